@@ -1,0 +1,40 @@
+"""hotbasis LP engine: numbers only (numpy/scipy/highspy), no HTTP, no storage.
+
+Entry points:
+- ``solve(lp, options)``: cold solve (HiGHS by default, or the builtin simplex).
+- ``reoptimize(lp, basis, options)``: warm re-optimization from a stored basis.
+Both return a checked ``SolveResult``.
+"""
+
+from .basis import Basis, BasisError, Status, remap, slack_basis
+from .model import MAXIMIZE, MINIMIZE, LinearProgram, ModelError
+from .result import Ranging, SolveOptions, SolveResult
+
+__all__ = [
+    "Basis",
+    "BasisError",
+    "LinearProgram",
+    "MAXIMIZE",
+    "MINIMIZE",
+    "ModelError",
+    "Ranging",
+    "SolveOptions",
+    "SolveResult",
+    "Status",
+    "remap",
+    "slack_basis",
+    "solve",
+    "reoptimize",
+]
+
+
+def solve(lp, options=None):
+    from .engine import solve as _solve
+
+    return _solve(lp, options)
+
+
+def reoptimize(lp, basis, options=None, **kwargs):
+    from .engine import reoptimize as _reoptimize
+
+    return _reoptimize(lp, basis, options, **kwargs)
