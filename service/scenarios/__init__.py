@@ -1,0 +1,1 @@
+"""Generated planning scenarios (LP models of our own invention) for tests, demos and benchmarks."""
