@@ -1,0 +1,279 @@
+"""Engine facade: cold solves, warm re-optimization, checks and fallback.
+
+Every result leaving this module has been verified from the original
+unscaled data (check.py). A warm solve that hits numerical trouble, a limit,
+or a failed check is replaced by a cold HiGHS solve, and the result says so
+in ``fallback``; a result that fails its check is never reported optimal.
+"""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+import scipy.linalg as la
+
+from .basis import Basis, Status, normalize_nonbasic, slack_basis
+from .check import verify, verify_farkas, verify_ray
+from .factor import SingularBasis
+from .highs_cold import solve_highs
+from .model import LinearProgram
+from .result import ERROR, INFEASIBLE, OPTIMAL, UNBOUNDED, SolveOptions, SolveResult
+from .simplex import NumericalTrouble, Simplex
+
+DENSE_REPAIR_LIMIT = 3000  # rows; beyond this a broken basis is solved cold
+
+
+def solve(lp: LinearProgram, options: SolveOptions | None = None) -> SolveResult:
+    """Cold solve with HiGHS (default) or the builtin simplex from the slack basis."""
+    options = options or SolveOptions()
+    if options.engine == "builtin":
+        return _builtin(lp, slack_basis(lp), options, warm=False, reason="cold start from the slack basis")
+    if options.engine != "highs":
+        raise ValueError(f"unknown engine {options.engine!r}")
+    return _highs(lp, options, fallback=None)
+
+
+def reoptimize(
+    lp: LinearProgram,
+    basis: Basis,
+    options: SolveOptions | None = None,
+    *,
+    change_summary: str = "",
+) -> SolveResult:
+    """Warm re-optimization from ``basis`` (already carried over to ``lp``'s shape)."""
+    options = options or SolveOptions()
+    if basis.n != lp.n or basis.m != lp.m:
+        raise ValueError("basis shape does not match the model; carry it over with remap() first")
+    basis = normalize_nonbasic(basis, lp)
+    repair = None
+    try:
+        basis, repair = repair_basis(lp, basis)
+    except SingularBasis as exc:
+        return _highs(lp, options, fallback={"reason": "basis_repair_failed", "detail": str(exc)})
+    reason = change_summary or "warm start from the stored basis"
+    res = _builtin(lp, basis, options, warm=True, reason=reason)
+    if repair:
+        res.check["basis_repair"] = repair
+    return res
+
+
+# --------------------------------------------------------------------------- internals
+def _highs(lp: LinearProgram, options: SolveOptions, fallback: dict | None) -> SolveResult:
+    t = time.perf_counter()
+    res = solve_highs(lp, options)
+    res.fallback = fallback
+    if fallback:
+        res.reason = f"cold HiGHS solve after warm start trouble: {fallback['reason']}"
+    _attach_check(lp, res, options)
+    if res.status == OPTIMAL and not res.check.get("passed", False):
+        res.status = ERROR
+        res.message = "the HiGHS solution failed the independent check"
+    res.timings["total"] = time.perf_counter() - t
+    return res
+
+
+def _builtin(lp: LinearProgram, basis: Basis, options: SolveOptions, *, warm: bool, reason: str) -> SolveResult:
+    t = time.perf_counter()
+    if lp.trivially_inconsistent_bounds():
+        bad = lp.trivially_inconsistent_bounds()
+        return _finish_error(
+            lp, options, warm, f"lower bound above upper bound for {', '.join(bad[:5])}", t, INFEASIBLE
+        )
+    try:
+        sim = Simplex(lp, basis, options)
+        out = sim.run()
+    except (NumericalTrouble, SingularBasis) as exc:
+        why = getattr(exc, "reason", "singular_basis")
+        return _fallback_or_error(lp, options, warm, why, str(exc), t)
+    if out.status not in (OPTIMAL, INFEASIBLE, UNBOUNDED):
+        return _fallback_or_error(lp, options, warm, out.status, f"stopped after {out.pivots} pivots", t)
+
+    shadow = lp.sense * out.y
+    x = out.x
+    res = SolveResult(
+        status=out.status,
+        objective=lp.objective_value(x) if out.status == OPTIMAL else None,
+        x=x,
+        row_activity=lp.A @ x,
+        shadow_price=shadow,
+        reduced_cost=lp.c - lp.A.T @ shadow,
+        basis=out.basis,
+        method=_method_name(out.algorithms, warm),
+        warm=warm,
+        pivots=out.pivots,
+        reason=reason + _algo_phrase(out.algorithms),
+        pivot_log=_merge_log(out),
+        log_dropped=out.log_dropped,
+        timings=dict(out.timings),
+        farkas=out.farkas,
+        ray=out.ray,
+    )
+    res.timings["simplex"] = time.perf_counter() - t
+    _attach_check(lp, res, options)
+    if not res.check.get("passed", False):
+        return _fallback_or_error(lp, options, warm, "check_failed", _check_summary(res.check), t)
+    if options.ranging and res.status == OPTIMAL:
+        from .ranging import compute_ranging
+
+        res.ranging = compute_ranging(lp, res.basis, x, shadow, res.reduced_cost)
+    res.timings["total"] = time.perf_counter() - t
+    return res
+
+
+def _fallback_or_error(
+    lp: LinearProgram, options: SolveOptions, warm: bool, reason: str, detail: str, t0: float
+) -> SolveResult:
+    if options.fallback:
+        res = _highs(lp, options, fallback={"reason": reason, "detail": detail})
+        res.timings["total"] = time.perf_counter() - t0
+        return res
+    status = reason if reason in ("iteration_limit", "time_limit") else ERROR
+    return _finish_error(lp, options, warm, f"{reason}: {detail}", t0, status)
+
+
+def _finish_error(lp, options, warm, message, t0, status) -> SolveResult:
+    res = SolveResult(
+        status=status,
+        objective=None,
+        x=None,
+        row_activity=None,
+        shadow_price=None,
+        reduced_cost=None,
+        basis=None,
+        method="none",
+        warm=warm,
+        message=message,
+        reason=message,
+    )
+    res.timings["total"] = time.perf_counter() - t0
+    return res
+
+
+def _attach_check(lp: LinearProgram, res: SolveResult, options: SolveOptions) -> None:
+    t = time.perf_counter()
+    tol = options.check_tol
+    if res.status == OPTIMAL:
+        res.check = verify(lp, res.x, res.row_activity, res.shadow_price, res.reduced_cost, res.basis, tol=tol)
+    elif res.status == INFEASIBLE:
+        if res.farkas is not None:
+            res.check = verify_farkas(lp, res.farkas, tol=tol)
+        else:
+            res.check = {"passed": False, "detail": "no infeasibility certificate"}
+    elif res.status == UNBOUNDED:
+        if res.ray is not None:
+            res.check = verify_ray(lp, res.ray, tol=tol)
+        else:
+            res.check = {"passed": False, "detail": "no unbounded ray"}
+    else:
+        res.check = {"passed": False, "detail": f"no solution to check (status {res.status})"}
+    res.timings["check"] = time.perf_counter() - t
+
+
+def _check_summary(check: dict) -> str:
+    keys = [k for k, v in check.items() if isinstance(v, (int, float)) and not isinstance(v, bool)]
+    return ", ".join(f"{k}={check[k]:.3g}" for k in keys[:8])
+
+
+def _method_name(algorithms: list[str], warm: bool) -> str:
+    if not warm:
+        return "cold_builtin"
+    used = []
+    for a in algorithms:
+        if a not in used:
+            used.append(a)
+    return "+".join(used) if used else "none"
+
+
+def _algo_phrase(algorithms: list[str]) -> str:
+    if not algorithms:
+        return "; the basis was already optimal"
+    return "; ran " + " then ".join(algorithms) + " simplex"
+
+
+def _merge_log(out) -> list[dict]:
+    merged = list(out.pivot_log) + [e for e in out.events if e.get("reason") != "initial"]
+    merged.sort(key=lambda r: (r["iteration"], 0 if "event" in r else 1))
+    return merged
+
+
+# --------------------------------------------------------------------------- basis repair
+def repair_basis(lp: LinearProgram, basis: Basis) -> tuple[Basis, dict | None]:
+    """Return a factorizable basis close to ``basis``.
+
+    A basis with the right count that factorizes is returned unchanged. Else
+    the basic columns are ranked by a rank-revealing QR (column pivoting) and
+    the dependent ones are replaced by logicals chosen from the complement
+    space, preferring logicals that were already basic.
+    """
+    from .factor import Factor
+
+    m, n = lp.m, lp.n
+    status = np.concatenate([basis.col_status, basis.row_status])
+    basic = np.flatnonzero(status == Status.BASIC)
+    if basic.size == m:
+        try:
+            sim_B = _basis_matrix(lp, basic)
+            Factor(sim_B)
+            return basis, None
+        except SingularBasis:
+            pass
+    if m > DENSE_REPAIR_LIMIT:
+        raise SingularBasis(f"basis needs repair and the model has more than {DENSE_REPAIR_LIMIT} rows")
+    struct = basic[basic < n]
+    M = lp.A[:, struct].toarray() if struct.size else np.zeros((m, 0))
+    norms = np.linalg.norm(M, axis=0)
+    norms[norms == 0] = 1.0
+    keep_struct = np.zeros(0, dtype=np.int64)
+    Q1 = np.zeros((m, 0))
+    if struct.size:
+        Q, R, piv = la.qr(M / norms, mode="economic", pivoting=True)
+        diag = np.abs(np.diag(R))
+        rank = int((diag > 1e-9 * max(1.0, diag.max(initial=0.0))).sum())
+        rank = min(rank, m)
+        keep_struct = struct[piv[:rank]]
+        Q1 = Q[:, :rank]
+    need = m - keep_struct.size
+    P = np.eye(m) - Q1 @ Q1.T
+    was_basic = status[n:] == Status.BASIC
+    P[:, was_basic] *= 4.0  # prefer logicals that were basic before
+    _, _, piv_rows = la.qr(P, mode="economic", pivoting=True)
+    rows = piv_rows[:need]
+    new_status = status.copy()
+    new_status[basic] = -1  # decide below
+    new_status[keep_struct] = Status.BASIC
+    new_status[n + rows] = Status.BASIC
+    dropped = np.flatnonzero(new_status == -1)
+    new_status[dropped] = Status.AT_LOWER  # normalized to a valid bound below
+    out = normalize_nonbasic(Basis(new_status[:n], new_status[n:]), lp)
+    out = _natural_for(out, lp, dropped)
+    report = {
+        "repaired": True,
+        "columns_dropped": [lp.col_names[j] for j in dropped if j < n][:50],
+        "logicals_added": [lp.row_names[i] for i in rows if not was_basic[i]][:50],
+        "basic_before": int(basic.size),
+    }
+    Factor(_basis_matrix(lp, np.flatnonzero(np.concatenate([out.col_status, out.row_status]) == Status.BASIC)))
+    return out, report
+
+
+def _natural_for(basis: Basis, lp: LinearProgram, idx: np.ndarray) -> Basis:
+    from .basis import nonbasic_status
+
+    n = lp.n
+    lower = np.concatenate([lp.col_lower, lp.row_lower])
+    upper = np.concatenate([lp.col_upper, lp.row_upper])
+    nat = nonbasic_status(lower[idx], upper[idx])
+    st = np.concatenate([basis.col_status, basis.row_status])
+    st[idx] = nat
+    return Basis(st[:n], st[n:])
+
+
+def _basis_matrix(lp: LinearProgram, basic: np.ndarray):
+    import scipy.sparse as sp
+
+    n, m = lp.n, lp.m
+    struct = basic[basic < n]
+    logical = basic[basic >= n] - n
+    B = sp.hstack([lp.A[:, struct], -sp.identity(m, format="csc")[:, logical]], format="csc")
+    return B

@@ -1,0 +1,678 @@
+"""Bounded revised simplex: dual and primal, warm-startable from any basis.
+
+Computational form (after scaling, see scaling.py), with N = n + m:
+
+    minimize   cost @ x          (cost = sense * c, zeros for logicals)
+    subject to Af @ x = 0,       Af = [A, -I]   (logical x[n+i] = row activity i)
+               lower <= x <= upper
+
+Notation (textbook meaning, used throughout this module):
+    B, basic_idx   basis matrix and the variable basic in each row
+    x_B            values of the basic variables, x_B = -B^-1 (Af_N x_N)
+    y              simplex multipliers, B^T y = cost_B
+    d              reduced costs, d = cost - Af^T y (zero for basics)
+    rho_r          row r of B^-1, from BTRAN of e_r
+    alpha_r        pivot row, alpha_r = Af^T rho_r
+    alpha_q        pivot column, alpha_q = B^-1 a_q (FTRAN)
+
+Dual simplex iteration (one function per step, as the loop in ``_dual``):
+choose a leaving row among primal-infeasible basics (dual steepest edge by
+default, Forrest and Goldfarb 1992), compute the pivot row, choose the entering
+column by a ratio test that keeps every reduced cost dual feasible: among the
+columns whose pivot-row entry can restore the row, the smallest |d_j /
+alpha_rj|, done as a Harris (1973) two-pass test with bound flipping for
+boxed columns (the long-step or bound-flipping ratio test, Fourer 1994;
+Maros 2003). No candidate proves primal infeasibility (rho_r is a Farkas
+certificate).
+
+Primal simplex: devex pricing (Harris 1973), Harris two-pass ratio test with
+the entering column's own bound flip; no blocking row gives an unbounded ray.
+
+A start that is neither primal nor dual feasible is handled by shifting costs
+until the basis is dual feasible, running the dual simplex, removing the
+shifts and finishing with the primal simplex. Stalling triggers cost (dual)
+or bound (primal) perturbation; perturbations are removed before returning
+and the result is cleaned up by the other algorithm when needed.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+import scipy.sparse as sp
+
+from .basis import Basis, Status
+from .factor import Factor, SingularBasis
+from .model import LinearProgram
+from .result import SolveOptions
+from .scaling import Scaling, compute_scaling, scale_matrix
+
+BASIC = int(Status.BASIC)
+AT_LOWER = int(Status.AT_LOWER)
+AT_UPPER = int(Status.AT_UPPER)
+FIXED = int(Status.FIXED)
+FREE = int(Status.FREE)
+
+
+class NumericalTrouble(RuntimeError):
+    """The simplex could not continue reliably; the caller should fall back."""
+
+    def __init__(self, reason: str, detail: str = "") -> None:
+        super().__init__(f"{reason}: {detail}" if detail else reason)
+        self.reason = reason
+        self.detail = detail
+
+
+class LimitReached(RuntimeError):
+    def __init__(self, status: str) -> None:
+        super().__init__(status)
+        self.status = status
+
+
+@dataclass
+class SimplexOutcome:
+    status: str  # optimal / infeasible / unbounded / iteration_limit / time_limit
+    x: np.ndarray  # structural values, unscaled
+    y: np.ndarray  # duals (min sense, unscaled)
+    basis: Basis
+    pivots: int
+    algorithms: list[str]
+    pivot_log: list[dict]
+    log_dropped: int
+    farkas: np.ndarray | None = None
+    ray: np.ndarray | None = None
+    events: list[dict] = field(default_factory=list)
+    timings: dict = field(default_factory=dict)
+
+
+class Simplex:
+    """One solve of one model from one starting basis."""
+
+    def __init__(self, lp: LinearProgram, basis: Basis, options: SolveOptions) -> None:
+        self.t0 = time.perf_counter()
+        self.lp = lp
+        self.opt = options
+        m, n = lp.m, lp.n
+        self.m, self.n, self.N = m, n, n + m
+        if basis.n != n or basis.m != m:
+            raise ValueError("basis does not match the model's shape")
+
+        self.sc = compute_scaling(lp.A) if options.scale else Scaling(np.ones(m), np.ones(n))
+        R, S = self.sc.row, self.sc.col
+        self.A = scale_matrix(lp.A, self.sc) if options.scale else sp.csc_matrix(lp.A)
+        self.AT = sp.csr_matrix(self.A.T)  # row-wise copy for pivot rows
+        self.cost_true = np.concatenate([lp.sense * lp.c * S, np.zeros(m)])
+        self.cost = self.cost_true.copy()
+        self.lower = np.concatenate([lp.col_lower / S, lp.row_lower * R])
+        self.upper = np.concatenate([lp.col_upper / S, lp.row_upper * R])
+        self.lower_true = self.lower.copy()
+        self.upper_true = self.upper.copy()
+        self.cost_shifted = False
+        self.bounds_shifted = False
+
+        self.status = np.concatenate([basis.col_status, basis.row_status]).astype(np.int8)
+        basic = np.flatnonzero(self.status == BASIC)
+        if basic.size != m:
+            raise SingularBasis(f"basis has {basic.size} basic variables for {m} rows")
+        self.basic_idx = basic.astype(np.int64)
+        self.x = np.zeros(self.N)
+        self.dse = np.ones(m)
+        self.devex = np.ones(self.N)
+        self.iteration = 0
+        self.algorithms: list[str] = []
+        self.pivot_log: list[dict] = []
+        self.log_dropped = 0
+        self.events: list[dict] = []
+        self.names = list(lp.col_names) + list(lp.row_names)
+        self.rng = np.random.default_rng(20261201)
+        self.factor: Factor | None = None
+        self.timings = {"factorize": 0.0}
+
+    # ----------------------------------------------------------- linear algebra
+    def column(self, j: int) -> np.ndarray:
+        a = np.zeros(self.m)
+        if j < self.n:
+            lo, hi = self.A.indptr[j], self.A.indptr[j + 1]
+            a[self.A.indices[lo:hi]] = self.A.data[lo:hi]
+        else:
+            a[j - self.n] = -1.0
+        return a
+
+    def row_product(self, rho: np.ndarray) -> np.ndarray:
+        """alpha_r = Af^T rho for all N variables."""
+        return np.concatenate([self.AT @ rho, -rho])
+
+    def times_af(self, v: np.ndarray) -> np.ndarray:
+        """Af @ v."""
+        return self.A @ v[: self.n] - v[self.n :]
+
+    def refactor(self, reason: str) -> None:
+        t = time.perf_counter()
+        bcols = self.basic_idx
+        B = self._basis_matrix(bcols, bcols < self.n)
+        self.factor = Factor(B)
+        self.timings["factorize"] += time.perf_counter() - t
+        self.events.append({"event": "refactor", "iteration": self.iteration, "reason": reason})
+        self.compute_primal()
+        self.compute_dual()
+
+    def _basis_matrix(self, bcols: np.ndarray, struct: np.ndarray) -> sp.csc_matrix:
+        m = self.m
+        cols = self.A[:, bcols[struct]]
+        slots = np.flatnonzero(struct)
+        logical_rows = bcols[~struct] - self.n
+        logical_slots = np.flatnonzero(~struct)
+        # assemble CSC of B directly: structural columns then logicals, then permute
+        data = [cols.data, -np.ones(logical_rows.size)]
+        rows = [cols.indices, logical_rows]
+        colidx = [np.repeat(slots, np.diff(cols.indptr)), logical_slots]
+        return sp.csc_matrix(
+            (np.concatenate(data), (np.concatenate(rows), np.concatenate(colidx))), shape=(m, m)
+        )
+
+    def nonbasic_values(self) -> None:
+        st = self.status
+        lo, up = self.lower, self.upper
+        x = self.x
+        x[st == AT_LOWER] = lo[st == AT_LOWER]
+        x[st == AT_UPPER] = up[st == AT_UPPER]
+        x[st == FIXED] = lo[st == FIXED]
+        x[st == FREE] = 0.0
+
+    def compute_primal(self) -> None:
+        self.nonbasic_values()
+        xn = self.x.copy()
+        xn[self.basic_idx] = 0.0
+        rhs = -self.times_af(xn)
+        xb = self.factor.ftran(rhs)
+        self.x[self.basic_idx] = xb
+        resid = self.times_af(self.x)
+        scale = 1.0 + np.abs(rhs).max(initial=0.0)
+        if not np.isfinite(xb).all() or np.abs(resid).max(initial=0.0) > 1e-6 * scale:
+            raise NumericalTrouble("inaccurate_factorization", "primal residual too large after refactorization")
+
+    def compute_dual(self) -> None:
+        self.y = self.factor.btran(self.cost[self.basic_idx])
+        self.d = self.cost - self.row_product(self.y)
+        self.d[self.basic_idx] = 0.0
+
+    # ------------------------------------------------------------- feasibility
+    def primal_infeasibilities(self) -> np.ndarray:
+        """Per basic row: amount below lower (negative) or above upper (positive)."""
+        xb = self.x[self.basic_idx]
+        lo = self.lower[self.basic_idx]
+        up = self.upper[self.basic_idx]
+        below = np.minimum(xb - lo, 0.0)
+        above = np.maximum(xb - up, 0.0)
+        return np.where(below < 0, below, above)
+
+    def dual_infeasibilities(self) -> np.ndarray:
+        """Per variable: how far d is on the wrong side for its nonbasic status."""
+        st = self.status
+        d = self.d
+        inf = np.zeros(self.N)
+        inf = np.where(st == AT_LOWER, np.maximum(-d, 0.0), inf)
+        inf = np.where(st == AT_UPPER, np.maximum(d, 0.0), inf)
+        inf = np.where(st == FREE, np.abs(d), inf)
+        return inf
+
+    def primal_feasible(self) -> bool:
+        return np.abs(self.primal_infeasibilities()).max(initial=0.0) <= self.opt.primal_tol
+
+    def dual_feasible(self) -> bool:
+        return self.dual_infeasibilities().max(initial=0.0) <= self.opt.dual_tol
+
+    def objective(self) -> float:
+        return float(self.cost_true @ self.x)
+
+    # -------------------------------------------------------------- bookkeeping
+    def check_limits(self) -> None:
+        if self.iteration >= self.opt.max_iterations:
+            raise LimitReached("iteration_limit")
+        if time.perf_counter() - self.t0 > self.opt.time_limit:
+            raise LimitReached("time_limit")
+
+    def log(self, record: dict) -> None:
+        if len(self.pivot_log) < self.opt.log_limit:
+            self.pivot_log.append(record)
+        else:
+            self.log_dropped += 1
+
+    def _name(self, j: int) -> str:
+        return self.names[j]
+
+    def _kind(self, j: int) -> str:
+        return "variable" if j < self.n else "constraint"
+
+    def _pivot_record(self, algorithm, p, leave_bound, q, pivot, step, flips) -> dict:
+        pinf = np.abs(self.primal_infeasibilities()).sum()
+        dinf = self.dual_infeasibilities().sum()
+        return {
+            "iteration": self.iteration,
+            "algorithm": algorithm,
+            "leaving": self._name(p) if p is not None else None,
+            "leaving_kind": self._kind(p) if p is not None else None,
+            "leaving_bound": leave_bound,
+            "entering": self._name(q),
+            "entering_kind": self._kind(q),
+            "pivot": float(pivot) if pivot is not None else None,
+            "step": float(step),
+            "objective": self.lp.sense * self.objective() + self.lp.offset,
+            "primal_infeasibility": float(pinf),
+            "dual_infeasibility": float(dinf),
+            "bound_flips": int(flips),
+        }
+
+    def basis_change(self, r: int, q: int, alpha_q: np.ndarray, leave_status: int) -> None:
+        p = int(self.basic_idx[r])
+        self.status[p] = FIXED if self.lower[p] == self.upper[p] else leave_status
+        self.status[q] = BASIC
+        self.basic_idx[r] = q
+        self.factor.update(r, alpha_q)
+        self.iteration += 1
+        if self.factor.updates >= self.opt.refactor_every:
+            self.refactor("update_limit")
+
+    # ================================================================ dual
+    def shift_costs_for_dual_feasibility(self) -> int:
+        """Make the current basis dual feasible: flip boxed, shift the rest."""
+        dinf = self.dual_infeasibilities()
+        bad = np.flatnonzero(dinf > self.opt.dual_tol)
+        if bad.size == 0:
+            return 0
+        st = self.status
+        boxed = np.isfinite(self.lower[bad]) & np.isfinite(self.upper[bad])
+        flip = bad[boxed & (st[bad] != FREE)]
+        st[flip[st[flip] == AT_LOWER]] = 9  # temporary marker
+        st[flip[st[flip] == AT_UPPER]] = AT_LOWER
+        st[st == 9] = AT_UPPER
+        shift = bad[~(boxed & (st[bad] != FREE))]
+        margin = 10 * self.opt.dual_tol * (1.0 + self.rng.random(shift.size))
+        target = np.where(st[shift] == AT_LOWER, margin, np.where(st[shift] == AT_UPPER, -margin, 0.0))
+        self.cost[shift] += target - self.d[shift]
+        self.d[shift] = target
+        if shift.size:
+            self.cost_shifted = True
+        if flip.size:
+            self.compute_primal()
+        return int(bad.size)
+
+    def perturb_costs(self) -> None:
+        """Widen dual feasibility margins of nonbasics to break dual degeneracy."""
+        st = self.status
+        mag = 1e-6 * (1.0 + np.abs(self.cost_true)) * (0.5 + self.rng.random(self.N))
+        delta = np.where(st == AT_LOWER, mag, np.where(st == AT_UPPER, -mag, 0.0))
+        self.cost += delta
+        self.d += delta
+        self.cost_shifted = True
+        self.events.append({"event": "perturb", "iteration": self.iteration, "reason": "dual_stall"})
+
+    def _choose_row(self, infeas: np.ndarray) -> int:
+        tol = self.opt.primal_tol
+        cand = np.flatnonzero(np.abs(infeas) > tol)
+        if cand.size == 0:
+            return -1
+        rule = self.opt.dual_pricing
+        if rule == "smallest_index":
+            return int(cand[np.argmin(self.basic_idx[cand])])
+        if rule == "dantzig":
+            return int(cand[np.argmax(np.abs(infeas[cand]))])
+        return int(cand[np.argmax(infeas[cand] ** 2 / self.dse[cand])])
+
+    def _dual_ratio_test(self, r: int, alpha_r: np.ndarray, delta: float):
+        """Harris two-pass ratio test with bound flipping.
+
+        Returns (q, t, flips) with q = -1 when no column can enter.
+        The step t keeps every reduced cost dual feasible (within tolerance).
+        """
+        s = 1.0 if delta < 0 else -1.0
+        st = self.status
+        at = s * alpha_r
+        ptol = self.opt.pivot_tol
+        lower_ok = (st == AT_LOWER) & (at < -ptol)
+        upper_ok = (st == AT_UPPER) & (at > ptol)
+        free_ok = (st == FREE) & (np.abs(at) > ptol)
+        cand = np.flatnonzero(lower_ok | upper_ok | free_ok)
+        if cand.size == 0:
+            return -1, 0.0, np.zeros(0, dtype=np.int64)
+        a_abs = np.abs(at[cand])
+        dj = self.d[cand]
+        # sign-adjusted reduced cost (>= -tol for a dual feasible basis)
+        dtil = np.where(st[cand] == AT_UPPER, -dj, dj)
+        dtil = np.where(st[cand] == FREE, 0.0, dtil)
+        ratio = dtil / a_abs
+        tol = self.opt.dual_tol
+        harris = (dtil + tol) / a_abs
+        range_ = (self.upper[cand] - self.lower[cand]) * a_abs  # inf when not boxed
+        range_ = np.where(st[cand] == FREE, np.inf, range_)
+        slope = abs(delta)
+        order = np.argsort(ratio, kind="stable")
+        flips: list[np.ndarray] = []
+        start = 0
+        k = order.size
+        while start < k:
+            rest = order[start:]
+            tmax = harris[rest].min()
+            group = rest[ratio[rest] <= tmax]
+            need = range_[group].sum()
+            if self.opt.dual_pricing != "smallest_index" and slope - need > 0 and np.isfinite(need):
+                flips.append(group)
+                slope -= need
+                start += group.size
+                continue
+            # Harris pass 2: the largest |alpha| among the group
+            if self.opt.dual_pricing == "smallest_index":
+                best = group[np.argmin(cand[group])]
+            else:
+                best = group[np.argmax(a_abs[group])]
+            t = max(ratio[best], 0.0)
+            flip_idx = cand[np.concatenate(flips)] if flips else np.zeros(0, dtype=np.int64)
+            return int(cand[best]), float(t), flip_idx
+        # every candidate could be flipped with slope to spare: dual unbounded
+        return -1, 0.0, np.zeros(0, dtype=np.int64)
+
+    def _apply_flips(self, flip_idx: np.ndarray) -> None:
+        if flip_idx.size == 0:
+            return
+        st = self.status
+        old = self.x[flip_idx].copy()
+        to_upper = st[flip_idx] == AT_LOWER
+        st[flip_idx] = np.where(to_upper, AT_UPPER, AT_LOWER)
+        new = np.where(to_upper, self.upper[flip_idx], self.lower[flip_idx])
+        self.x[flip_idx] = new
+        dx = np.zeros(self.N)
+        dx[flip_idx] = new - old
+        col = self.times_af(dx)
+        self.x[self.basic_idx] -= self.factor.ftran(col)
+
+    def _dual(self) -> str:
+        """Dual simplex from a dual feasible basis. Returns a terminal status."""
+        self.algorithms.append("dual")
+        ptol = self.opt.pivot_tol
+        best_obj = -np.inf
+        since_progress = 0
+        perturbed = False
+        trouble = 0
+        while True:
+            self.check_limits()
+            infeas = self.primal_infeasibilities()
+            r = self._choose_row(infeas)
+            if r < 0:
+                return "optimal"
+            delta = float(infeas[r])
+            p = int(self.basic_idx[r])
+            e = np.zeros(self.m)
+            e[r] = 1.0
+            rho = self.factor.btran(e)
+            if self.opt.dual_pricing == "steepest_edge":
+                self.dse[r] = max(float(rho @ rho), 1e-12)
+            alpha_r = self.row_product(rho)
+            alpha_r[self.basic_idx] = 0.0
+            q, t, flip_idx = self._dual_ratio_test(r, alpha_r, delta)
+            if q < 0:
+                if self.factor.updates > 0:
+                    self.refactor("confirm_infeasibility")
+                    continue
+                self.farkas_rho = rho * (1.0 if delta < 0 else -1.0)
+                self.infeasible_row = r
+                return "infeasible"
+            alpha_q = self.factor.ftran(self.column(q))
+            piv = alpha_q[r]
+            if abs(piv) < ptol or abs(piv - alpha_r[q]) > 1e-6 * (1.0 + abs(piv)):
+                trouble += 1
+                if trouble > 3:
+                    raise NumericalTrouble("unstable_pivot", f"pivot {piv:.3e} vs row entry {alpha_r[q]:.3e}")
+                self.refactor("pivot_mismatch")
+                continue
+            trouble = 0
+            s = 1.0 if delta < 0 else -1.0
+            # dual update: d_j += s * t * alpha_rj; leaving variable gets s * t
+            if t != 0.0:
+                self.d += (s * t) * alpha_r
+                self.y -= (s * t) * rho
+            self.d[q] = 0.0
+            self.d[p] = s * t
+            # bound flips then the primal step
+            self._apply_flips(flip_idx)
+            bound = self.lower[p] if delta < 0 else self.upper[p]
+            theta_p = (self.x[p] - bound) / piv
+            self.x[self.basic_idx] -= theta_p * alpha_q
+            self.x[q] += theta_p
+            self.x[p] = bound
+            # dual steepest edge weights (Forrest and Goldfarb 1992)
+            if self.opt.dual_pricing == "steepest_edge":
+                tau = self.factor.ftran(rho)
+                wr = self.dse[r]
+                ratio = alpha_q / piv
+                self.dse = np.maximum(self.dse - 2.0 * ratio * tau + ratio**2 * wr, 1e-8)
+                self.dse[r] = max(wr / piv**2, 1e-8)
+            leave_status = AT_LOWER if delta < 0 else AT_UPPER
+            self.basis_change(r, q, alpha_q, leave_status)
+            self.x[p] = bound
+            self.log(
+                self._pivot_record(
+                    "dual", p, "lower" if delta < 0 else "upper", q, piv, theta_p, flip_idx.size
+                )
+            )
+            obj = float(self.cost @ self.x)
+            if obj > best_obj + 1e-9 * (1.0 + abs(best_obj)):
+                best_obj = obj
+                since_progress = 0
+            else:
+                since_progress += 1
+                if since_progress >= self.opt.stall_limit and not perturbed:
+                    self.perturb_costs()
+                    perturbed = True
+                    since_progress = 0
+
+    # ================================================================ primal
+    def perturb_bounds(self) -> None:
+        """Relax bounds of basic variables slightly to break primal degeneracy."""
+        b = self.basic_idx
+        lo, up = self.lower[b], self.upper[b]
+        mag = 1e-7 * (1.0 + np.maximum(np.abs(np.where(np.isfinite(lo), lo, 0)), 1.0))
+        mag = mag * (0.5 + self.rng.random(b.size))
+        self.lower[b] = np.where(np.isfinite(lo) & (lo < up), lo - mag, lo)
+        self.upper[b] = np.where(np.isfinite(up) & (lo < up), up + mag, up)
+        self.bounds_shifted = True
+        self.events.append({"event": "perturb", "iteration": self.iteration, "reason": "primal_stall"})
+
+    def _choose_column(self) -> int:
+        st = self.status
+        d = self.d
+        tol = self.opt.dual_tol
+        score = np.where((st == AT_LOWER) & (d < -tol), -d, 0.0)
+        score = np.where((st == AT_UPPER) & (d > tol), d, score)
+        score = np.where((st == FREE) & (np.abs(d) > tol), np.abs(d), score)
+        cand = np.flatnonzero(score > 0)
+        if cand.size == 0:
+            return -1
+        if self.opt.primal_pricing == "devex":
+            return int(cand[np.argmax(score[cand] ** 2 / self.devex[cand])])
+        return int(cand[np.argmax(score[cand])])
+
+    def _primal_ratio_test(self, q: int, direction: float, alpha_q: np.ndarray):
+        """Harris two-pass; returns (r, step, leave_status) with r = -1 for a bound flip
+        of the entering variable and r = -2 for an unbounded direction."""
+        b = self.basic_idx
+        at = direction * alpha_q  # basics move by -step * at
+        ptol = self.opt.pivot_tol
+        tol = self.opt.primal_tol
+        xb = self.x[b]
+        lo, up = self.lower[b], self.upper[b]
+        dec = (at > ptol) & np.isfinite(lo)
+        inc = (at < -ptol) & np.isfinite(up)
+        idx = np.flatnonzero(dec | inc)
+        own = self.upper[q] - self.lower[q]
+        if idx.size == 0:
+            if np.isfinite(own):
+                return -1, own, 0
+            return -2, np.inf, 0
+        a = at[idx]
+        room = np.where(a > 0, xb[idx] - lo[idx], up[idx] - xb[idx])
+        harris = (room + tol) / np.abs(a)
+        tmax = harris.min()
+        if np.isfinite(own) and own <= tmax:
+            return -1, own, 0
+        ratio = np.maximum(room, 0.0) / np.abs(a)
+        group = np.flatnonzero(ratio <= tmax)
+        best = group[np.argmax(np.abs(a[group]))]
+        r = int(idx[best])
+        leave_status = AT_LOWER if a[best] > 0 else AT_UPPER
+        return r, float(ratio[best]), leave_status
+
+    def _primal(self) -> str:
+        self.algorithms.append("primal")
+        best_obj = np.inf
+        since_progress = 0
+        perturbed = False
+        trouble = 0
+        self.devex[:] = 1.0
+        while True:
+            self.check_limits()
+            q = self._choose_column()
+            if q < 0:
+                return "optimal"
+            direction = -1.0 if self.d[q] > 0 else 1.0
+            alpha_q = self.factor.ftran(self.column(q))
+            r, step, leave_status = self._primal_ratio_test(q, direction, alpha_q)
+            if r == -2:
+                ray = np.zeros(self.N)
+                ray[q] = direction
+                ray[self.basic_idx] = -direction * alpha_q
+                self.ray_full = ray
+                return "unbounded"
+            if r == -1:
+                # entering variable moves to its other bound; no basis change
+                self.x[q] += direction * step
+                self.x[self.basic_idx] -= direction * step * alpha_q
+                self.status[q] = AT_UPPER if direction > 0 else AT_LOWER
+                self.iteration += 1
+                self.log(self._pivot_record("primal", None, None, q, None, step, 1))
+                continue
+            piv = alpha_q[r]
+            e = np.zeros(self.m)
+            e[r] = 1.0
+            rho = self.factor.btran(e)
+            alpha_r = self.row_product(rho)
+            if abs(piv) < self.opt.pivot_tol or abs(piv - alpha_r[q]) > 1e-6 * (1.0 + abs(piv)):
+                trouble += 1
+                if trouble > 3:
+                    raise NumericalTrouble("unstable_pivot", f"pivot {piv:.3e} vs row entry {alpha_r[q]:.3e}")
+                self.refactor("pivot_mismatch")
+                continue
+            trouble = 0
+            p = int(self.basic_idx[r])
+            # primal update
+            self.x[self.basic_idx] -= direction * step * alpha_q
+            self.x[q] += direction * step
+            bound = self.lower[p] if leave_status == AT_LOWER else self.upper[p]
+            # dual update along the pivot row
+            dq = self.d[q]
+            alpha_r[self.basic_idx] = 0.0
+            self.d -= (dq / piv) * alpha_r
+            self.y += (dq / piv) * rho
+            self.d[p] = -dq / piv
+            self.d[q] = 0.0
+            # devex reference weights (Harris 1973), simplified update
+            if self.opt.primal_pricing == "devex":
+                wq = self.devex[q]
+                ratio2 = (alpha_r / piv) ** 2 * wq
+                self.devex = np.maximum(self.devex, ratio2)
+                self.devex[p] = max(wq / piv**2, 1.0)
+            self.basis_change(r, q, alpha_q, leave_status)
+            self.x[p] = bound
+            self.log(
+                self._pivot_record(
+                    "primal", p, "lower" if leave_status == AT_LOWER else "upper", q, piv, step, 0
+                )
+            )
+            obj = float(self.cost @ self.x)
+            if obj < best_obj - 1e-9 * (1.0 + abs(best_obj)):
+                best_obj = obj
+                since_progress = 0
+            else:
+                since_progress += 1
+                if since_progress >= self.opt.stall_limit and not perturbed:
+                    self.perturb_bounds()
+                    perturbed = True
+                    since_progress = 0
+                    self.compute_primal()
+
+    # ================================================================ driver
+    def remove_shifts(self) -> None:
+        changed = False
+        if self.cost_shifted:
+            self.cost = self.cost_true.copy()
+            self.cost_shifted = False
+            changed = True
+        if self.bounds_shifted:
+            self.lower = self.lower_true.copy()
+            self.upper = self.upper_true.copy()
+            self.bounds_shifted = False
+            changed = True
+        if changed:
+            self.refactor("remove_perturbation")
+
+    def run(self) -> SimplexOutcome:
+        status = "optimal"
+        try:
+            self.refactor("initial")
+            for _round in range(12):
+                pf = self.primal_feasible()
+                df = self.dual_feasible()
+                if pf and df:
+                    if self.cost_shifted or self.bounds_shifted:
+                        self.remove_shifts()
+                        continue
+                    status = "optimal"
+                    break
+                if not pf:
+                    if not df:
+                        self.shift_costs_for_dual_feasibility()
+                    status = self._dual()
+                    if status == "infeasible":
+                        break
+                else:
+                    if self.cost_shifted:
+                        self.remove_shifts()
+                        continue
+                    status = self._primal()
+                    if status == "unbounded":
+                        break
+            else:
+                raise NumericalTrouble("no_convergence", "dual/primal alternation did not settle")
+        except LimitReached as lim:
+            status = lim.status
+        if status in ("optimal",) and (self.cost_shifted or self.bounds_shifted):
+            raise NumericalTrouble("perturbation_left", "could not remove perturbations")
+        return self._outcome(status)
+
+    def _outcome(self, status: str) -> SimplexOutcome:
+        n = self.n
+        S, R = self.sc.col, self.sc.row
+        x = self.x[:n] * S
+        # duals from a fresh BTRAN with the true costs
+        y_s = self.factor.btran(self.cost_true[self.basic_idx])
+        y = y_s * R
+        st = self.status.copy()
+        basis = Basis(st[:n], st[n:])
+        out = SimplexOutcome(
+            status=status,
+            x=x,
+            y=y,
+            basis=basis,
+            pivots=self.iteration,
+            algorithms=self.algorithms,
+            pivot_log=self.pivot_log,
+            log_dropped=self.log_dropped,
+            events=self.events,
+            timings=self.timings,
+        )
+        if status == "infeasible":
+            out.farkas = self.farkas_rho * R
+        if status == "unbounded":
+            out.ray = self.ray_full[:n] * S
+        return out
