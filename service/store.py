@@ -1,0 +1,474 @@
+"""Redis storage: the only module that knows key names and encodings.
+
+Key layout (``<id>`` is a model id; the braces are Redis Cluster hash tags,
+so every key of one model lives in one slot and a transaction over them is
+legal on a cluster):
+
+    {hb:<id>}:head        hash: tenant, version, first_version, created_at, updated_at, name
+    {hb:<id>}:v:<n>       hash: version n: model arrays, basis, solution arrays, result JSON, summary JSON
+    {hb:<id>}:ops         hash: operation id (idempotency key digest or job id) -> version it produced
+    {hb:<id>}:opt         sorted set: operation id by time, to expire entries of :ops
+    {hbt:<tenant>}:models sorted set: the tenant's model ids by creation time (listing)
+    {hbi:<tenant>:<digest>}:rec / :body   idempotency record and stored response body
+
+Encodings: numpy arrays as raw little-endian buffers (explicit dtypes), the
+basis as ``Basis.to_bytes``, names as UTF-8 joined by newlines (names are
+printable, so they hold no newline), small records as JSON. Never pickle.
+
+Writes are compare-and-set on the model's version: WATCH the head, check the
+version the caller worked from, then MULTI/EXEC. A lost race raises
+VersionConflict and the caller re-applies its change on the new version.
+"""
+
+from __future__ import annotations
+
+import base64
+import hashlib
+import secrets
+import time
+import zlib
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import orjson
+import redis
+
+from service.lp.basis import Basis
+from service.lp.model import LinearProgram
+
+KEEP_VERSIONS = 20
+OP_TTL = 24 * 3600  # seconds an operation id (idempotency key, job id) is remembered per model
+IDEMPOTENCY_TTL = 24 * 3600
+PENDING_TTL = 120  # seconds a request may hold an idempotency key before another may take over
+
+F8 = np.dtype("<f8")
+I4 = np.dtype("<i4")
+I8 = np.dtype("<i8")
+
+
+class StoreError(Exception):
+    """Base of storage outcomes the API turns into HTTP answers."""
+
+
+class ModelNotFound(StoreError):
+    pass
+
+
+class ModelExists(StoreError):
+    pass
+
+
+class VersionConflict(StoreError):
+    """The model moved on since the caller read it."""
+
+    def __init__(self, current: int | None) -> None:
+        super().__init__(f"model is at version {current}")
+        self.current = current
+
+
+class AlreadyApplied(StoreError):
+    """The operation id was already committed; ``version`` is what it produced."""
+
+    def __init__(self, version: int) -> None:
+        super().__init__(f"operation already applied as version {version}")
+        self.version = version
+
+
+@dataclass
+class Solution:
+    """Arrays of a solve in model order (any of them None when the solve has none)."""
+
+    x: np.ndarray | None
+    row_activity: np.ndarray | None
+    shadow_price: np.ndarray | None
+    reduced_cost: np.ndarray | None
+
+
+@dataclass
+class VersionRecord:
+    """Everything stored for one version of a model."""
+
+    version: int
+    lp: LinearProgram
+    basis: Basis | None
+    solution: Solution
+    result: dict[str, Any]  # JSON: status, objective, solve, pivot_log, changes
+    summary: dict[str, Any]  # JSON: one line of the version listing
+    created_at: float = field(default_factory=time.time)
+    moved_cols: np.ndarray | None = None  # variables whose value moved against the previous version
+    moved_rows: np.ndarray | None = None  # constraints whose activity or shadow price moved
+
+
+@dataclass
+class Head:
+    model_id: str
+    tenant: str
+    version: int
+    first_version: int
+    created_at: float
+    updated_at: float
+    name: str
+
+    @property
+    def etag(self) -> str:
+        return f'"v{self.version}"'
+
+
+# ------------------------------------------------------------------------------ encodings
+
+
+def _buf(a: np.ndarray, dtype: np.dtype) -> bytes:
+    return np.ascontiguousarray(a, dtype=dtype).tobytes()
+
+
+def _arr(b: bytes, dtype: np.dtype) -> np.ndarray:
+    return np.frombuffer(b, dtype=dtype).astype(dtype.newbyteorder("="), copy=True)
+
+
+def _names(b: bytes, count: int) -> list[str]:
+    if count == 0:
+        return []
+    out = b.decode("utf-8").split("\n")
+    if len(out) != count:
+        raise ValueError(f"stored name list holds {len(out)} names, expected {count}")
+    return out
+
+
+def encode_lp(lp: LinearProgram) -> dict[str, bytes]:
+    A = lp.A.tocsc()
+    meta = {"m": lp.m, "n": lp.n, "nnz": int(A.nnz), "sense": lp.sense, "offset": lp.offset, "name": lp.name}
+    return {
+        "lp.meta": orjson.dumps(meta),
+        "lp.indptr": _buf(A.indptr, I8),
+        "lp.indices": _buf(A.indices, I4),
+        "lp.data": _buf(A.data, F8),
+        "lp.c": _buf(lp.c, F8),
+        "lp.col_lower": _buf(lp.col_lower, F8),
+        "lp.col_upper": _buf(lp.col_upper, F8),
+        "lp.row_lower": _buf(lp.row_lower, F8),
+        "lp.row_upper": _buf(lp.row_upper, F8),
+        "lp.col_names": "\n".join(lp.col_names).encode("utf-8"),
+        "lp.row_names": "\n".join(lp.row_names).encode("utf-8"),
+    }
+
+
+def decode_lp(f: dict[bytes, bytes]) -> LinearProgram:
+    import scipy.sparse as sp
+
+    meta = orjson.loads(f[b"lp.meta"])
+    m, n = meta["m"], meta["n"]
+    A = sp.csc_matrix(
+        (_arr(f[b"lp.data"], F8), _arr(f[b"lp.indices"], I4), _arr(f[b"lp.indptr"], I8)), shape=(m, n)
+    )
+    return LinearProgram(
+        A=A,
+        c=_arr(f[b"lp.c"], F8),
+        col_lower=_arr(f[b"lp.col_lower"], F8),
+        col_upper=_arr(f[b"lp.col_upper"], F8),
+        row_lower=_arr(f[b"lp.row_lower"], F8),
+        row_upper=_arr(f[b"lp.row_upper"], F8),
+        sense=meta["sense"],
+        offset=meta["offset"],
+        col_names=_names(f[b"lp.col_names"], n),
+        row_names=_names(f[b"lp.row_names"], m),
+        name=meta["name"],
+    )
+
+
+_SOLUTION_FIELDS = ("x", "row_activity", "shadow_price", "reduced_cost")
+
+
+def encode_record(rec: VersionRecord) -> dict[str, bytes]:
+    out = encode_lp(rec.lp)
+    if rec.basis is not None:
+        out["basis"] = rec.basis.to_bytes()
+    for name in _SOLUTION_FIELDS:
+        value = getattr(rec.solution, name)
+        if value is not None:
+            out[f"sol.{name}"] = _buf(value, F8)
+    if rec.moved_cols is not None:
+        out["moved.cols"] = _buf(rec.moved_cols, I4)
+    if rec.moved_rows is not None:
+        out["moved.rows"] = _buf(rec.moved_rows, I4)
+    out["result"] = orjson.dumps(rec.result)
+    out["summary"] = orjson.dumps(rec.summary)
+    out["created_at"] = repr(rec.created_at).encode()
+    out["version"] = str(rec.version).encode()
+    return out
+
+
+def decode_record(f: dict[bytes, bytes]) -> VersionRecord:
+    arrays = [f.get(f"sol.{name}".encode()) for name in _SOLUTION_FIELDS]
+    sol = Solution(*(None if b is None else _arr(b, F8) for b in arrays))
+    return VersionRecord(
+        version=int(f[b"version"]),
+        lp=decode_lp(f),
+        basis=Basis.from_bytes(f[b"basis"]) if b"basis" in f else None,
+        solution=sol,
+        result=orjson.loads(f[b"result"]),
+        summary=orjson.loads(f[b"summary"]),
+        created_at=float(f[b"created_at"]),
+        moved_cols=_arr(f[b"moved.cols"], I4) if b"moved.cols" in f else None,
+        moved_rows=_arr(f[b"moved.rows"], I4) if b"moved.rows" in f else None,
+    )
+
+
+# ------------------------------------------------------------------------------ ids
+
+
+_ID_ALPHABET = "abcdefghijklmnopqrstuvwxyz234567"
+
+
+def new_model_id() -> str:
+    """16 characters of lowercase base32 (80 random bits)."""
+    return base64.b32encode(secrets.token_bytes(10)).decode().lower()
+
+
+def model_id_for(tenant: str, idempotency_key: str) -> str:
+    """The model id a create with an Idempotency-Key gets: a retry, even after a crash, finds it."""
+    digest = hashlib.sha256(b"model\0" + tenant.encode() + b"\0" + idempotency_key.encode()).digest()
+    return base64.b32encode(digest[:10]).decode().lower()
+
+
+def valid_model_id(text: str) -> bool:
+    return len(text) == 16 and all(ch in _ID_ALPHABET for ch in text)
+
+
+def op_digest(tenant: str, key: str) -> str:
+    return hashlib.sha256(tenant.encode() + b"\0" + key.encode()).hexdigest()[:32]
+
+
+# ------------------------------------------------------------------------------ the store
+
+
+class Store:
+    """Models, versions and idempotency records in Redis."""
+
+    def __init__(self, client: redis.Redis, keep_versions: int = KEEP_VERSIONS, op_ttl: int = OP_TTL) -> None:
+        self.r = client
+        self.keep = max(1, int(keep_versions))
+        self.op_ttl = op_ttl
+
+    @classmethod
+    def from_url(cls, url: str, **kwargs: Any) -> Store:
+        client = redis.Redis.from_url(url, socket_timeout=10, socket_connect_timeout=5, health_check_interval=30)
+        return cls(client, **kwargs)
+
+    # keys
+    @staticmethod
+    def _head(mid: str) -> str:
+        return f"{{hb:{mid}}}:head"
+
+    @staticmethod
+    def _ver(mid: str, n: int) -> str:
+        return f"{{hb:{mid}}}:v:{n}"
+
+    @staticmethod
+    def _ops(mid: str) -> str:
+        return f"{{hb:{mid}}}:ops"
+
+    @staticmethod
+    def _opt(mid: str) -> str:
+        return f"{{hb:{mid}}}:opt"
+
+    @staticmethod
+    def _index(tenant: str) -> str:
+        return f"{{hbt:{tenant}}}:models"
+
+    @staticmethod
+    def _idem(tenant: str, digest: str) -> tuple[str, str]:
+        tag = f"{{hbi:{tenant}:{digest}}}"
+        return f"{tag}:rec", f"{tag}:body"
+
+    def ping(self) -> bool:
+        return bool(self.r.ping())
+
+    # ---- reading
+    def head(self, model_id: str) -> Head | None:
+        return self._decode_head(model_id, self.r.hgetall(self._head(model_id)))
+
+    @staticmethod
+    def _decode_head(model_id: str, raw: dict[bytes, bytes]) -> Head | None:
+        if not raw or b"version" not in raw:
+            return None
+        return Head(
+            model_id=model_id,
+            tenant=raw[b"tenant"].decode(),
+            version=int(raw[b"version"]),
+            first_version=int(raw[b"first_version"]),
+            created_at=float(raw[b"created_at"]),
+            updated_at=float(raw[b"updated_at"]),
+            name=raw.get(b"name", b"").decode(),
+        )
+
+    def load(self, model_id: str, version: int) -> VersionRecord | None:
+        raw = self.r.hgetall(self._ver(model_id, version))
+        return decode_record(raw) if raw else None
+
+    def summaries(self, head: Head) -> list[dict[str, Any]]:
+        """Summary of every kept version, oldest first."""
+        numbers = list(range(head.first_version, head.version + 1))
+        pipe = self.r.pipeline(transaction=False)
+        for n in numbers:
+            pipe.hget(self._ver(head.model_id, n), "summary")
+        return [orjson.loads(raw) for raw in pipe.execute() if raw]
+
+    def op_version(self, model_id: str, op_id: str) -> int | None:
+        raw = self.r.hget(self._ops(model_id), op_id)
+        return int(raw) if raw else None
+
+    def list_models(self, tenant: str, offset: int, limit: int) -> tuple[list[Head], int]:
+        key = self._index(tenant)
+        total = int(self.r.zcard(key))
+        ids = [b.decode() for b in self.r.zrange(key, offset, offset + limit - 1)]
+        pipe = self.r.pipeline(transaction=False)
+        for mid in ids:
+            pipe.hgetall(self._head(mid))
+        heads = []
+        for mid, raw in zip(ids, pipe.execute()):
+            h = self._decode_head(mid, raw)
+            if h is None:  # a delete that stopped half way; tidy the listing
+                self.r.zrem(key, mid)
+                continue
+            heads.append(h)
+        return heads, total
+
+    # ---- writing
+    def create(self, model_id: str, tenant: str, record: VersionRecord, op_id: str | None = None) -> Head:
+        """Store a new model as version 1; raises ModelExists if the id is taken."""
+        head_key = self._head(model_id)
+        now = record.created_at
+        record.version = 1
+        record.summary["version"] = 1
+        fields = encode_record(record)
+        with self.r.pipeline() as pipe:
+            try:
+                pipe.watch(head_key)
+                if pipe.exists(head_key):
+                    raise ModelExists(model_id)
+                pipe.multi()
+                pipe.hset(self._ver(model_id, 1), mapping=fields)
+                pipe.hset(
+                    head_key,
+                    mapping={
+                        "tenant": tenant,
+                        "version": 1,
+                        "first_version": 1,
+                        "created_at": repr(now),
+                        "updated_at": repr(now),
+                        "name": record.lp.name,
+                    },
+                )
+                if op_id:
+                    pipe.hset(self._ops(model_id), op_id, 1)
+                    pipe.zadd(self._opt(model_id), {op_id: now})
+                pipe.execute()
+            except redis.WatchError as exc:
+                raise ModelExists(model_id) from exc
+        # the listing lives in the tenant's slot, so it cannot join the transaction above
+        self.r.zadd(self._index(tenant), {model_id: now})
+        return Head(model_id, tenant, 1, 1, now, now, record.lp.name)
+
+    def commit(
+        self, model_id: str, expected_version: int, record: VersionRecord, op_id: str | None = None
+    ) -> Head:
+        """Store ``record`` as version expected_version + 1 if the model is still at expected_version.
+
+        Raises VersionConflict when another write came first, AlreadyApplied
+        when ``op_id`` was committed before, ModelNotFound when the model is gone.
+        """
+        head_key = self._head(model_id)
+        now = record.created_at
+        with self.r.pipeline() as pipe:
+            try:
+                pipe.watch(head_key)
+                raw = pipe.hgetall(head_key)
+                head = self._decode_head(model_id, raw)
+                if head is None:
+                    raise ModelNotFound(model_id)
+                if op_id:
+                    done = pipe.hget(self._ops(model_id), op_id)
+                    if done:
+                        raise AlreadyApplied(int(done))
+                if head.version != expected_version:
+                    raise VersionConflict(head.version)
+                new = head.version + 1
+                record.version = new
+                record.summary["version"] = new  # the store, not the caller, numbers versions
+                first = max(head.first_version, new - self.keep + 1)
+                stale_ops = pipe.zrangebyscore(self._opt(model_id), "-inf", now - self.op_ttl)
+                pipe.multi()
+                pipe.hset(self._ver(model_id, new), mapping=encode_record(record))
+                pipe.hset(
+                    head_key,
+                    mapping={"version": new, "first_version": first, "updated_at": repr(now), "name": record.lp.name},
+                )
+                for old in range(head.first_version, first):
+                    pipe.delete(self._ver(model_id, old))
+                if op_id:
+                    pipe.hset(self._ops(model_id), op_id, new)
+                    pipe.zadd(self._opt(model_id), {op_id: now})
+                if stale_ops:
+                    pipe.hdel(self._ops(model_id), *stale_ops)
+                    pipe.zrem(self._opt(model_id), *stale_ops)
+                pipe.execute()
+            except redis.WatchError as exc:
+                raise VersionConflict(None) from exc
+        return Head(model_id, head.tenant, new, first, head.created_at, now, record.lp.name)
+
+    def delete(self, model_id: str) -> bool:
+        head_key = self._head(model_id)
+        while True:
+            with self.r.pipeline() as pipe:
+                try:
+                    pipe.watch(head_key)
+                    head = self._decode_head(model_id, pipe.hgetall(head_key))
+                    if head is None:
+                        return False
+                    pipe.multi()
+                    keys = [self._ver(model_id, n) for n in range(head.first_version, head.version + 1)]
+                    pipe.delete(head_key, self._ops(model_id), self._opt(model_id), *keys)
+                    pipe.execute()
+                except redis.WatchError:
+                    continue
+            self.r.zrem(self._index(head.tenant), model_id)
+            return True
+
+    # ---- idempotency records
+    def idem_begin(self, tenant: str, key: str, fingerprint: str) -> dict[str, Any] | None:
+        """Reserve an Idempotency-Key, or return what is already recorded under it.
+
+        Returns None when the caller now holds the key; otherwise a dict with
+        "state" ("pending" or "done"), "fingerprint" and, when done, "status",
+        "headers" and "body".
+        """
+        rec_key, body_key = self._idem(tenant, op_digest(tenant, key))
+        pending = orjson.dumps({"state": "pending", "fingerprint": fingerprint})
+        for _ in range(5):
+            if self.r.set(rec_key, pending, nx=True, ex=PENDING_TTL):
+                return None
+            raw = self.r.get(rec_key)
+            if raw is None:  # expired between the two calls
+                continue
+            rec = orjson.loads(raw)
+            if rec.get("state") == "done":
+                body = self.r.get(body_key)
+                rec["body"] = zlib.decompress(body) if body else b""
+            return rec
+        raise StoreError("could not reserve the idempotency key")
+
+    def idem_finish(
+        self, tenant: str, key: str, fingerprint: str, status: int, headers: dict[str, str], body: bytes,
+        ttl: int = IDEMPOTENCY_TTL,
+    ) -> None:
+        rec_key, body_key = self._idem(tenant, op_digest(tenant, key))
+        rec = {"state": "done", "fingerprint": fingerprint, "status": status, "headers": headers}
+        pipe = self.r.pipeline(transaction=True)
+        pipe.set(body_key, zlib.compress(body, 1), ex=ttl)
+        pipe.set(rec_key, orjson.dumps(rec), ex=ttl)
+        pipe.execute()
+
+    def idem_abort(self, tenant: str, key: str) -> None:
+        rec_key, body_key = self._idem(tenant, op_digest(tenant, key))
+        self.r.delete(rec_key, body_key)

@@ -1,0 +1,192 @@
+"""The Redis store against a real throwaway redis-server: encodings, CAS, history, idempotency."""
+
+from __future__ import annotations
+
+import threading
+
+import numpy as np
+import pytest
+from conftest import snapshot
+
+from service.document import apply_patch, from_document
+from service.lp.basis import Basis
+from service.store import (
+    AlreadyApplied,
+    ModelExists,
+    ModelNotFound,
+    Solution,
+    Store,
+    VersionConflict,
+    VersionRecord,
+    decode_lp,
+    encode_lp,
+    model_id_for,
+    new_model_id,
+    valid_model_id,
+)
+
+DOC = {
+    "name": "kiln line",
+    "sense": "max",
+    "objective_offset": 2.5,
+    "variables": {"tiles": {"cost": 3, "upper": 10}, "bricks": {"cost": 2, "lower": None}, "glaze/µ": {}},
+    "constraints": {"kiln": {"terms": {"tiles": 1, "bricks": 1}, "upper": 12}, "clay": {"terms": {"bricks": 2}}},
+}
+
+
+def record(lp, version=1, note="") -> VersionRecord:
+    x = np.arange(lp.n, dtype=float)
+    return VersionRecord(
+        version=version,
+        lp=lp,
+        basis=Basis(np.zeros(lp.n, dtype=np.int8) + 1, np.zeros(lp.m, dtype=np.int8)),
+        solution=Solution(x, lp.A @ x, np.ones(lp.m), None),
+        result={"status": "optimal", "objective": 1.5, "note": note},
+        summary={"version": version, "note": note},
+        moved_cols=np.array([0, 2], dtype=np.int32),
+    )
+
+
+@pytest.fixture
+def store(rclient):
+    return Store(rclient, keep_versions=3)
+
+
+def test_lp_encoding_round_trips_exactly():
+    lp = from_document(DOC)
+    back = decode_lp({k.encode(): v for k, v in encode_lp(lp).items()})
+    assert back.col_names == lp.col_names and back.row_names == lp.row_names
+    assert back.name == "kiln line" and back.sense == lp.sense and back.offset == 2.5
+    for name in ("c", "col_lower", "col_upper", "row_lower", "row_upper"):
+        np.testing.assert_array_equal(getattr(back, name), getattr(lp, name))
+    assert (back.A != lp.A).nnz == 0
+    assert back.c.flags.writeable  # the engine may work in place on what we hand it
+
+
+def test_encoding_is_raw_buffers_not_pickle(store, rclient):
+    lp = from_document(DOC)
+    store.create("aaaaaaaaaaaaaaaa", "acme", record(lp))
+    raw = rclient.hgetall("{hb:aaaaaaaaaaaaaaaa}:v:1")
+    assert raw[b"lp.c"] == np.array([3, 2, 0], dtype="<f8").tobytes()
+    assert raw[b"basis"][:4] == b"HBB1"
+    assert all(not value.startswith(b"\x80") for value in raw.values())  # pickle protocol 2+ marker
+
+
+def test_create_load_and_keys_share_one_hash_tag(store, rclient):
+    lp = from_document(DOC)
+    mid = new_model_id()
+    assert valid_model_id(mid)
+    head = store.create(mid, "acme", record(lp))
+    assert head.version == 1 and head.etag == '"v1"'
+    loaded = store.load(mid, 1)
+    assert loaded.result["objective"] == 1.5 and loaded.lp.col_names[2] == "glaze/µ"
+    np.testing.assert_array_equal(loaded.solution.x, [0, 1, 2])
+    assert loaded.solution.reduced_cost is None
+    np.testing.assert_array_equal(loaded.basis.col_status, [1, 1, 1])
+    np.testing.assert_array_equal(loaded.moved_cols, [0, 2])
+    model_keys = [k for k in rclient.keys("*") if b"hbt:" not in k]
+    # every key of the model carries the same hash tag, so Redis Cluster puts them in one slot
+    assert {k.split(b"}")[0] for k in model_keys} == {b"{hb:" + mid.encode()}
+    with pytest.raises(ModelExists):
+        store.create(mid, "acme", record(lp))
+
+
+def test_commit_is_compare_and_set_and_keeps_recent_versions(store):
+    lp = from_document(DOC)
+    mid = new_model_id()
+    store.create(mid, "acme", record(lp))
+    for n in range(2, 6):
+        head = store.commit(mid, n - 1, record(lp, note=f"v{n}"))
+        assert head.version == n
+    with pytest.raises(VersionConflict) as info:
+        store.commit(mid, 3, record(lp))
+    assert info.value.current == 5
+    head = store.head(mid)
+    assert (head.first_version, head.version) == (3, 5)  # keep_versions=3
+    assert store.load(mid, 2) is None and store.load(mid, 3).result["note"] == "v3"
+    assert [s["version"] for s in store.summaries(head)] == [3, 4, 5]
+    with pytest.raises(ModelNotFound):
+        store.commit("bbbbbbbbbbbbbbbb", 1, record(lp))
+
+
+def test_an_operation_id_commits_once(store):
+    lp = from_document(DOC)
+    mid = new_model_id()
+    store.create(mid, "acme", record(lp))
+    store.commit(mid, 1, record(lp), op_id="job-7")
+    with pytest.raises(AlreadyApplied) as info:
+        store.commit(mid, 2, record(lp), op_id="job-7")
+    assert info.value.version == 2 and store.head(mid).version == 2
+    assert store.op_version(mid, "job-7") == 2
+
+
+def test_concurrent_commits_never_overwrite_each_other(store):
+    """Each thread re-reads and retries on conflict; every change ends up in its own version."""
+    base = from_document(DOC)
+    mid = new_model_id()
+    store.create(mid, "acme", record(base))
+    errors = []
+
+    def worker(k: int) -> None:
+        try:
+            for _ in range(200):
+                head = store.head(mid)
+                current = store.load(mid, head.version)
+                new_lp, _ = apply_patch(current.lp, {"constraints": {f"limit_{k}": {"terms": {"tiles": 1}, "upper": k}}})
+                try:
+                    store.commit(mid, head.version, record(new_lp))
+                    return
+                except VersionConflict:
+                    continue
+            errors.append(f"thread {k} gave up")
+        except Exception as exc:  # surfaced below; a thread must not die silently
+            errors.append(repr(exc))
+
+    threads = [threading.Thread(target=worker, args=(k,)) for k in range(6)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert not errors
+    head = store.head(mid)
+    assert head.version == 7
+    final = store.load(mid, 7).lp
+    assert {f"limit_{k}" for k in range(6)} <= set(final.row_names)
+
+
+def test_delete_removes_every_key(store, rclient):
+    lp = from_document(DOC)
+    mid = new_model_id()
+    store.create(mid, "acme", record(lp))
+    store.commit(mid, 1, record(lp), op_id="x")
+    before = snapshot(rclient)
+    assert before
+    assert store.delete(mid) is True
+    assert snapshot(rclient) == {}
+    assert store.delete(mid) is False
+
+
+def test_list_models_is_per_tenant_and_paginated(store):
+    lp = from_document(DOC)
+    ids = [new_model_id() for _ in range(5)]
+    for mid in ids:
+        store.create(mid, "acme", record(lp))
+    store.create(new_model_id(), "globex", record(lp))
+    page, total = store.list_models("acme", 0, 3)
+    assert total == 5 and [h.model_id for h in page] == ids[:3]
+    page, _ = store.list_models("acme", 3, 3)
+    assert [h.model_id for h in page] == ids[3:]
+
+
+def test_idempotency_records(store):
+    assert store.idem_begin("acme", "key-1", "fp") is None
+    pending = store.idem_begin("acme", "key-1", "fp")
+    assert pending["state"] == "pending"
+    store.idem_finish("acme", "key-1", "fp", 201, {"ETag": '"v1"'}, b'{"ok": true}')
+    done = store.idem_begin("acme", "key-1", "fp")
+    assert done["state"] == "done" and done["status"] == 201 and done["body"] == b'{"ok": true}'
+    assert store.idem_begin("globex", "key-1", "fp") is None  # keys are per tenant
+    store.idem_abort("globex", "key-1")
+    assert store.idem_begin("globex", "key-1", "fp") is None
+    assert model_id_for("acme", "k") == model_id_for("acme", "k") != model_id_for("globex", "k")
+    assert valid_model_id(model_id_for("acme", "k"))
