@@ -6,9 +6,17 @@ Entry points:
 Both return a checked ``SolveResult``.
 """
 
+from threadpoolctl import threadpool_limits
+
 from .basis import Basis, BasisError, Status, remap, slack_basis
 from .model import MAXIMIZE, MINIMIZE, LinearProgram, ModelError
 from .result import Ranging, SolveOptions, SolveResult
+
+# One BLAS thread: the engine's dense vector work is small, and a threaded BLAS
+# on a busy 2-core host spends milliseconds per call synchronizing threads.
+# Scale-out comes from processes (gunicorn workers), not BLAS threads.
+threadpool_limits(1, user_api="blas")
+
 
 __all__ = [
     "Basis",

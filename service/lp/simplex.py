@@ -415,6 +415,13 @@ class Simplex:
                 if self.factor.updates > 0:
                     self.refactor("confirm_infeasibility")
                     continue
+                # rho_i is exactly zero in theory for every other basic logical
+                # (rho^T B = e_r^T); drop the rounding noise there.
+                others = self.basic_idx[self.basic_idx >= self.n] - self.n
+                others = others[others != p - self.n]
+                rho = rho.copy()
+                rho[others] = 0.0
+                rho[np.abs(rho) <= 1e-11 * np.abs(rho).max()] = 0.0  # drop tolerance
                 self.farkas_rho = rho * (1.0 if delta < 0 else -1.0)
                 self.infeasible_row = r
                 return "infeasible"
