@@ -21,7 +21,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.sparse as sp
 
-from .basis import Basis, Status
+from .basis import Basis, Status, normalize_nonbasic
 from .factor import Factor
 from .model import LinearProgram
 from .result import Ranging
@@ -51,6 +51,7 @@ def compute_ranging(
 ) -> Ranging:
     n, m = lp.n, lp.m
     sense = lp.sense
+    basis = normalize_nonbasic(basis, lp)  # equality rows and fixed columns: FIXED
     status = np.concatenate([basis.col_status, basis.row_status])
     basic = np.flatnonzero(status == Status.BASIC)
     factor = Factor(_full_basis_matrix(lp, basic))
