@@ -101,3 +101,48 @@ def auth(tenant: str = "acme") -> dict[str, str]:
 def snapshot(client: redis.Redis) -> dict[bytes, bytes]:
     """Every key's serialized value: compare before and after to prove nothing changed."""
     return {key: client.dump(key) for key in sorted(client.keys("*"))}
+
+
+def reference_objective(doc: dict) -> float | None:
+    """Optimum of a model document by an independent solver (reference solve: scipy.optimize.linprog, HiGHS)."""
+    import numpy as np
+    from scipy.optimize import linprog
+
+    names = list(doc["variables"])
+    index = {n: j for j, n in enumerate(names)}
+    sign = -1.0 if doc.get("sense") == "max" else 1.0
+    c = np.array([sign * (v.get("cost") or 0.0) for v in doc["variables"].values()])
+    bounds = [(v.get("lower", 0.0), v.get("upper")) for v in doc["variables"].values()]
+    a_ub, b_ub = [], []
+    for con in doc.get("constraints", {}).values():
+        row = np.zeros(len(names))
+        for name, coef in con.get("terms", {}).items():
+            row[index[name]] = coef
+        if con.get("upper") is not None:
+            a_ub.append(row)
+            b_ub.append(con["upper"])
+        if con.get("lower") is not None:
+            a_ub.append(-row)
+            b_ub.append(-con["lower"])
+    res = linprog(c, A_ub=np.array(a_ub) if a_ub else None, b_ub=np.array(b_ub) if b_ub else None,
+                  bounds=bounds, method="highs")
+    if res.status != 0:
+        return None
+    return sign * res.fun + (doc.get("objective_offset") or 0.0)
+
+
+def juice_network() -> dict:
+    """A small two-press, three-buyer juice distribution plan (invented), minimizing cost."""
+    presses = {"press_north": 70, "press_south": 60}
+    buyers = {"cafe_a": 30, "cafe_b": 25, "market": 45}
+    cost = {
+        ("press_north", "cafe_a"): 4, ("press_north", "cafe_b"): 6, ("press_north", "market"): 5,
+        ("press_south", "cafe_a"): 7, ("press_south", "cafe_b"): 3, ("press_south", "market"): 4,
+    }  # fmt: skip
+    variables = {f"ship_{p}_{b}": {"cost": cost[p, b]} for p in presses for b in buyers}
+    constraints = {}
+    for p, cap in presses.items():
+        constraints[f"capacity_{p}"] = {"terms": {f"ship_{p}_{b}": 1 for b in buyers}, "upper": cap}
+    for b, need in buyers.items():
+        constraints[f"demand_{b}"] = {"terms": {f"ship_{p}_{b}": 1 for p in presses}, "lower": need}
+    return {"name": "juice network", "sense": "min", "variables": variables, "constraints": constraints}

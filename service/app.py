@@ -1,0 +1,103 @@
+"""The Flask application factory."""
+
+from __future__ import annotations
+
+import logging
+import os
+import re
+import time
+import uuid
+from collections.abc import Mapping
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from flask import Flask, Response, g, request
+
+from service.api import register_blueprints
+from service.api.auth import KeyRing, keys_from_env
+from service.api.errors import register_error_handlers
+from service.cache import VersionCache
+from service.logs import configure_logging
+from service.lp.result import SolveOptions
+from service.operations import ModelService
+from service.store import Store
+
+REQUEST_ID_RE = re.compile(r"^[\x21-\x7e]{1,128}$")
+access_log = logging.getLogger("hotbasis.access")
+
+
+@dataclass
+class Services:
+    """What the views reach through ``current_app.extensions["hotbasis"]``."""
+
+    service: ModelService
+    keyring: KeyRing
+
+
+def _env_config() -> dict[str, Any]:
+    env = os.environ
+    return {
+        "REDIS_URL": env.get("HOTBASIS_REDIS_URL", "redis://127.0.0.1:6379/0"),
+        "MAX_CONTENT_LENGTH": int(env.get("HOTBASIS_MAX_BODY_BYTES", str(64 * 1024 * 1024))),
+        "KEEP_VERSIONS": int(env.get("HOTBASIS_KEEP_VERSIONS", "20")),
+        "CACHE_SIZE": int(env.get("HOTBASIS_CACHE_SIZE", "16")),
+        "COLD_ENGINE": env.get("HOTBASIS_COLD_ENGINE", "highs"),
+        "LOG_LEVEL": env.get("HOTBASIS_LOG_LEVEL", "INFO"),
+        "OPENAPI_PATH": env.get("HOTBASIS_OPENAPI", str(Path(__file__).resolve().parent.parent / "openapi.yaml")),
+    }
+
+
+def create_app(config: Mapping[str, Any] | None = None) -> Flask:
+    """Build the service. ``config`` overrides the environment (tests pass REDIS_URL and API_KEYS).
+
+    API_KEYS maps key -> tenant; when absent, keys come from HOTBASIS_API_KEYS
+    or the file named by HOTBASIS_API_KEYS_FILE.
+    """
+    app = Flask("hotbasis")
+    app.config.update(_env_config())
+    app.config.update(config or {})
+    configure_logging(app.config["LOG_LEVEL"])
+    keys = app.config.get("API_KEYS")
+    if keys is None:
+        keys = keys_from_env()
+    if not keys:
+        logging.getLogger("hotbasis").warning("no API keys configured: every /v1 request will be refused")
+    store = Store.from_url(app.config["REDIS_URL"], keep_versions=app.config["KEEP_VERSIONS"])
+    service = ModelService(store, VersionCache(app.config["CACHE_SIZE"]),
+                           SolveOptions(engine=app.config["COLD_ENGINE"]))
+    app.extensions["hotbasis"] = Services(service=service, keyring=KeyRing(keys))
+    register_error_handlers(app)
+    register_blueprints(app)
+    _register_request_hooks(app)
+    return app
+
+
+def _register_request_hooks(app: Flask) -> None:
+    @app.before_request
+    def start() -> None:
+        rid = request.headers.get("X-Request-ID", "")
+        g.request_id = rid if REQUEST_ID_RE.match(rid) else uuid.uuid4().hex
+        g.started = time.perf_counter()
+
+    @app.after_request
+    def finish(resp: Response) -> Response:
+        rid = g.get("request_id") or uuid.uuid4().hex
+        resp.headers["X-Request-ID"] = rid
+        if request.path.startswith("/v1/"):
+            resp.headers.setdefault("Cache-Control", "no-store")
+        timings = g.get("timings") or {}
+        if timings:
+            resp.headers["Server-Timing"] = ", ".join(f"{k};dur={v * 1000:.2f}" for k, v in timings.items())
+        elapsed = time.perf_counter() - g.get("started", time.perf_counter())
+        fields = {
+            "method": request.method,
+            "path": request.path,
+            "status": resp.status_code,
+            "duration_ms": round(elapsed * 1000, 2),
+        }
+        for key in ("tenant", "model_id", "version", "solve_method", "pivots"):
+            if g.get(key) is not None:
+                fields[key] = g.get(key)
+        access_log.info("request", extra=fields)
+        return resp

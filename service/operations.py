@@ -1,0 +1,275 @@
+"""Create and change models: validate, solve or re-optimize, commit by compare-and-set.
+
+The same functions serve the HTTP views and (later) queue workers: they take
+plain values and return records, and know nothing about Flask.
+"""
+
+from __future__ import annotations
+
+import logging
+import random
+import time
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from service import lp as engine
+from service.cache import VersionCache
+from service.document import ChangeSet, apply_patch
+from service.lp.basis import Basis
+from service.lp.model import LinearProgram
+from service.lp.result import SolveOptions, SolveResult
+from service.serialize import change_report, moved_indices, result_record, solution_of, summary_record
+from service.store import (
+    AlreadyApplied,
+    Head,
+    ModelExists,
+    ModelNotFound,
+    Store,
+    VersionConflict,
+    VersionRecord,
+    model_id_for,
+    new_model_id,
+)
+
+log = logging.getLogger("hotbasis.operations")
+
+
+class PreconditionFailed(Exception):
+    """If-Match named a version that is no longer current."""
+
+    def __init__(self, current: Head) -> None:
+        super().__init__(f"the model is at version {current.version}")
+        self.current = current
+
+
+class TooMuchContention(Exception):
+    """A change lost the compare-and-set race too many times in a row."""
+
+
+@dataclass
+class Outcome:
+    head: Head
+    record: VersionRecord
+    created: bool = False  # a new version was stored by this call
+    replayed: bool = False  # the operation id had been applied before; this is its stored version
+    timings: dict[str, float] = field(default_factory=dict)  # seconds, by phase
+    attempts: int = 1
+
+
+class ModelService:
+    """Models of many tenants, kept in a Store, re-optimized by the engine."""
+
+    def __init__(
+        self, store: Store, cache: VersionCache, options: SolveOptions | None = None, max_attempts: int = 64
+    ) -> None:
+        self.store = store
+        self.cache = cache
+        self.options = options or SolveOptions()
+        self.max_attempts = max_attempts
+
+    # ---------------------------------------------------------------- reading
+    def head(self, tenant: str, model_id: str) -> Head:
+        head = self.store.head(model_id)
+        if head is None or head.tenant != tenant:  # another tenant's model does not exist for you
+            raise ModelNotFound(model_id)
+        return head
+
+    def record(self, head: Head, version: int | None = None) -> VersionRecord:
+        version = head.version if version is None else version
+        cached = self.cache.get(head.model_id, version)
+        if cached is not None:
+            return cached.record
+        rec = self.store.load(head.model_id, version)
+        if rec is None:
+            raise ModelNotFound(f"{head.model_id} version {version}")
+        self.cache.put(head.model_id, version, rec)
+        return rec
+
+    # ---------------------------------------------------------------- creating
+    def create(self, tenant: str, lp: LinearProgram, op_id: str | None = None, idem_key: str | None = None) -> Outcome:
+        """Cold-solve a new model and store it as version 1.
+
+        With an idempotency key the id is derived from (tenant, key), so a
+        retry after a crash finds the model instead of making a second one.
+        """
+        timings: dict[str, float] = {}
+        model_id = model_id_for(tenant, idem_key) if idem_key else new_model_id()
+        if idem_key:
+            existing = self.store.head(model_id)
+            if existing is not None and existing.tenant == tenant:
+                return Outcome(existing, self.record(existing, existing.first_version), replayed=True)
+        t = time.perf_counter()
+        res = self._cold(lp, reason="new model")
+        timings["solve"] = time.perf_counter() - t
+        rec = self._record(lp, res, res.basis, changes=None, moved_from=None)
+        t = time.perf_counter()
+        for _ in range(3):
+            try:
+                head = self.store.create(model_id, tenant, rec, op_id=op_id)
+                break
+            except ModelExists:
+                if idem_key:
+                    existing = self.store.head(model_id)
+                    if existing is not None:
+                        return Outcome(existing, self.record(existing, existing.first_version), replayed=True)
+                model_id = new_model_id()
+        else:  # pragma: no cover - 80 random bits colliding three times
+            raise ModelExists(model_id)
+        timings["store"] = time.perf_counter() - t
+        self.cache.put(model_id, 1, rec)
+        return Outcome(head, rec, created=True, timings=timings)
+
+    # ---------------------------------------------------------------- changing
+    def patch(
+        self,
+        tenant: str,
+        model_id: str,
+        patch: Any,
+        if_match: list[str] | None = None,
+        op_id: str | None = None,
+    ) -> Outcome:
+        """Apply a merge patch on the latest version, re-optimize warm, commit as the next version.
+
+        Without ``if_match`` a lost race is retried on the newer version, so
+        concurrent changes are serialized and none is lost. With ``if_match``
+        (a list of acceptable ETags, or ["*"]) a stale version raises
+        PreconditionFailed instead. An invalid patch raises DocumentError
+        before anything is stored.
+        """
+        timings: dict[str, float] = {}
+        for attempt in range(1, self.max_attempts + 1):
+            t = time.perf_counter()
+            head = self.head(tenant, model_id)
+            if op_id:
+                done = self.store.op_version(model_id, op_id)
+                if done is not None:
+                    return self._replay(head, done)
+            if if_match is not None and "*" not in if_match and head.etag not in if_match:
+                raise PreconditionFailed(head)
+            prior = self.record(head)
+            timings["load"] = timings.get("load", 0.0) + time.perf_counter() - t
+
+            t = time.perf_counter()
+            new_lp, changes = apply_patch(prior.lp, patch)
+            timings["patch"] = timings.get("patch", 0.0) + time.perf_counter() - t
+            if changes.empty():
+                return Outcome(head, prior, timings=timings, attempts=attempt)
+
+            t = time.perf_counter()
+            res, start_basis = self._reoptimize(prior, new_lp, changes)
+            timings["solve"] = timings.get("solve", 0.0) + time.perf_counter() - t
+
+            t = time.perf_counter()
+            rec = self._record(new_lp, res, res.basis if res.basis is not None else start_basis,
+                               changes=changes, moved_from=prior)
+            try:
+                new_head = self.store.commit(model_id, head.version, rec, op_id=op_id)
+            except VersionConflict:
+                timings["store"] = timings.get("store", 0.0) + time.perf_counter() - t
+                if if_match is not None and "*" not in if_match:
+                    raise PreconditionFailed(self.head(tenant, model_id)) from None
+                time.sleep(random.uniform(0.0, 0.002 * min(attempt, 10)))  # de-synchronize the racers
+                continue
+            except AlreadyApplied as done:
+                return self._replay(head, done.version)
+            timings["store"] = timings.get("store", 0.0) + time.perf_counter() - t
+            self.cache.put(model_id, new_head.version, rec)
+            return Outcome(new_head, rec, created=True, timings=timings, attempts=attempt)
+        raise TooMuchContention(f"gave up after {self.max_attempts} attempts")
+
+    def delete(self, tenant: str, model_id: str) -> None:
+        self.head(tenant, model_id)
+        self.store.delete(model_id)
+        self.cache.drop(model_id)
+
+    # ---------------------------------------------------------------- internals
+    def _replay(self, head: Head, version: int) -> Outcome:
+        """The stored answer of an operation applied before (a retry after a lost response)."""
+        current = self.store.head(head.model_id) or head
+        return Outcome(current, self.record(current, version), replayed=True)
+
+    def _cold(self, lp: LinearProgram, reason: str, fallback: dict | None = None) -> SolveResult:
+        res = engine.solve(lp, self.options)
+        if fallback is not None:
+            res.fallback = fallback
+            res.reason = f"cold solve: {fallback['reason']}"
+        elif not res.reason:
+            res.reason = f"cold solve of a {reason}"
+        return res
+
+    def _reoptimize(self, prior: VersionRecord, new_lp: LinearProgram, changes: ChangeSet):
+        """Warm re-optimization from the stored basis carried over by name; cold if there is none."""
+        basis = prior.basis
+        if basis is None or basis.n != prior.lp.n or basis.m != prior.lp.m:
+            return self._cold(new_lp, "changed model", fallback={"reason": "no_stored_basis"}), None
+        start, _report = engine.remap(basis, prior.lp.col_names, prior.lp.row_names, new_lp)
+        # seam: the cached engine state of (model, prior version) goes to the engine here once it takes one
+        try:
+            res = engine.reoptimize(new_lp, start, self.options, change_summary=describe(changes))
+        except Exception as exc:  # the engine failed outright: answer with a cold solve, and say so
+            log.exception("warm re-optimization raised; solving cold")
+            res = self._cold(new_lp, "changed model", fallback={"reason": "engine_error", "detail": str(exc)[:300]})
+        return res, start
+
+    def _record(
+        self,
+        lp: LinearProgram,
+        res: SolveResult,
+        basis: Basis | None,
+        changes: ChangeSet | None,
+        moved_from: VersionRecord | None,
+    ) -> VersionRecord:
+        now = time.time()
+        sol = solution_of(res)
+        objective = None if res.objective is None else float(res.objective)
+        if moved_from is None:
+            report = None
+            moved_cols = moved_indices(sol.x, None)
+            moved_rows = np.union1d(moved_indices(sol.row_activity, None), moved_indices(sol.shadow_price, None))
+            moved_rows = moved_rows.astype(np.int32)
+        else:
+            report, moved_cols, moved_rows = change_report(moved_from, lp, sol, objective, changes.summary())
+        result = result_record(res, lp, report)
+        change_kind = None if changes is None else {"kind": changes.kind(), **changes.counts(),
+                                                    "sense": changes.sense,
+                                                    "objective_offset": changes.objective_offset,
+                                                    "name": changes.name}
+        return VersionRecord(
+            version=0,  # numbered by the store at commit
+            lp=lp,
+            basis=basis,
+            solution=sol,
+            result=result,
+            summary=summary_record(0, now, result, change_kind),
+            created_at=now,
+            moved_cols=moved_cols,
+            moved_rows=moved_rows,
+        )
+
+
+def describe(changes: ChangeSet) -> str:
+    """A short phrase for the solve's reason: what the patch did."""
+    parts = []
+    labels = {
+        "rows_added": "constraint(s) added",
+        "rows_removed": "constraint(s) removed",
+        "columns_added": "variable(s) added",
+        "columns_removed": "variable(s) removed",
+        "row_bounds": "constraint bound(s) moved",
+        "column_bounds": "variable bound(s) moved",
+        "costs": "cost(s) changed",
+        "coefficients": "constraint(s) with new coefficients",
+    }
+    for key, label in labels.items():
+        count = len(getattr(changes, key))
+        if count:
+            parts.append(f"{count} {label}")
+    if changes.sense:
+        parts.append("objective sense flipped")
+    if changes.objective_offset:
+        parts.append("objective offset changed")
+    if changes.name and not parts:
+        parts.append("renamed")
+    return "warm start from the stored basis after: " + ", ".join(parts)

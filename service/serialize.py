@@ -1,0 +1,271 @@
+"""Solve results to the JSON the clients read: names, not indices; orjson for speed.
+
+The stored part of a result (``result_record``) is small JSON: status,
+objective, the solve section, the pivot log and the change report. The plan
+itself (values, duals, basis statuses) is kept as arrays and turned into
+JSON only when a response asks for it (``render_result``), trimmed by the
+``solution`` view and the ``fields`` list.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+import orjson
+
+from service.lp.basis import STATUS_NAMES, Basis, Status
+from service.lp.model import LinearProgram
+from service.lp.result import SolveResult
+from service.store import Solution, VersionRecord
+
+SECTIONS = ("solution", "solve", "pivot_log", "changes")
+SOLUTION_VIEWS = ("full", "nonzero", "moved", "none")
+ZERO = 1e-12  # values closer to zero than this are written as 0 (no -0.0 or 1e-17 noise in plans)
+MOVE_TOL = 1e-9  # relative change that counts as "moved"
+STORED_MOVES = 1000  # moved variables kept in a stored change report
+_STATUS_LOOKUP = np.array([STATUS_NAMES[s] for s in Status], dtype=object)
+
+
+def dumps(obj: Any) -> bytes:
+    return orjson.dumps(obj)
+
+
+def jsonable(value: Any) -> Any:
+    """Plain JSON values: numpy scalars to Python, non-finite floats to null."""
+    if isinstance(value, dict):
+        return {str(k): jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [jsonable(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return jsonable(value.tolist())
+    if isinstance(value, (bool, np.bool_)):
+        return bool(value)
+    if isinstance(value, (int, np.integer)):
+        return int(value)
+    if isinstance(value, (float, np.floating)):
+        value = float(value)
+        return value if math.isfinite(value) else None
+    if value is None or isinstance(value, str):
+        return value
+    return str(value)
+
+
+def _name_check(check: dict[str, Any], lp: LinearProgram) -> dict[str, Any]:
+    """The engine's check figures, with any row/column index turned into its name."""
+    out = jsonable(check)
+    for key, names in (("worst_row", lp.row_names), ("worst_dual_row", lp.row_names),
+                       ("worst_column", lp.col_names), ("worst_dual_column", lp.col_names)):
+        value = out.get(key)
+        if isinstance(value, int) and 0 <= value < len(names):
+            out[key] = names[value]
+    return out
+
+
+def _name_log_entry(entry: dict[str, Any], lp: LinearProgram) -> dict[str, Any]:
+    out = jsonable(entry)
+    for key in ("leaving", "entering"):
+        value = out.get(key)
+        kind = out.get(f"{key}_kind")
+        if isinstance(value, int):  # an index: name it (columns first, then row logicals)
+            if kind == "constraint" and value < lp.m:
+                out[key] = lp.row_names[value]
+            elif value < lp.n:
+                out[key] = lp.col_names[value]
+            elif value < lp.n + lp.m:
+                out[key] = lp.row_names[value - lp.n]
+    return out
+
+
+def solution_of(res: SolveResult) -> Solution:
+    return Solution(res.x, res.row_activity, res.shadow_price, res.reduced_cost)
+
+
+def result_record(res: SolveResult, lp: LinearProgram, changes: dict[str, Any] | None) -> dict[str, Any]:
+    """The JSON part of a result that is stored with its version."""
+    timings = {k: round(v * 1000.0, 3) for k, v in res.timings.items() if isinstance(v, (int, float))}
+    objective = None if res.objective is None or not math.isfinite(res.objective) else float(res.objective)
+    return {
+        "status": res.status,
+        "objective": objective,
+        "message": res.message or None,
+        "solve": {
+            "method": res.method,
+            "warm": bool(res.warm),
+            "pivots": int(res.pivots),
+            "reason": res.reason,
+            "fallback": jsonable(res.fallback) if res.fallback else None,
+            "check": _name_check(res.check or {}, lp),
+            "time_ms": timings.get("total", round(sum(timings.values()), 3)),
+            "timings_ms": timings,
+            "log_dropped": int(res.log_dropped),
+        },
+        "pivot_log": [_name_log_entry(e, lp) for e in res.pivot_log],
+        "changes": changes,
+    }
+
+
+def summary_record(version: int, created_at: float, result: dict[str, Any], change_kind: dict | None) -> dict:
+    """One line of the version listing."""
+    solve = result["solve"]
+    return {
+        "version": version,
+        "created_at": created_at,
+        "changes": change_kind,
+        "status": result["status"],
+        "objective": result["objective"],
+        "method": solve["method"],
+        "warm": solve["warm"],
+        "pivots": solve["pivots"],
+    }
+
+
+def _clean(values: np.ndarray) -> list[float]:
+    v = np.where(np.abs(values) < ZERO, 0.0, values) + 0.0  # + 0.0 turns -0.0 into 0.0
+    v = np.where(np.isfinite(v), v, np.nan)
+    return [None if math.isnan(x) else x for x in v.tolist()] if np.isnan(v).any() else v.tolist()
+
+
+def moved_indices(new: np.ndarray | None, old: np.ndarray | None) -> np.ndarray:
+    """Positions where ``new`` differs from ``old`` (NaN in old: new entries, moved if nonzero)."""
+    if new is None:
+        return np.zeros(0, dtype=np.int32)
+    if old is None:
+        old = np.zeros_like(new)
+    base = np.where(np.isnan(old), 0.0, old)
+    moved = np.abs(new - base) > MOVE_TOL * (1.0 + np.abs(base))
+    moved |= np.isnan(old) & (np.abs(new) > ZERO)
+    return np.flatnonzero(moved).astype(np.int32)
+
+
+def solution_json(
+    lp: LinearProgram, sol: Solution, basis: Basis | None, view: str, record: VersionRecord | None = None
+) -> dict[str, Any] | None:
+    """The plan by name: value, reduced cost, basis status per variable; activity, shadow price per row."""
+    if view == "none" or sol.x is None:
+        return None
+    n, m = lp.n, lp.m
+    if view == "full":
+        cols, rows = np.arange(n), np.arange(m)
+    elif view == "moved":
+        cols = record.moved_cols if record is not None and record.moved_cols is not None else np.arange(n)
+        rows = record.moved_rows if record is not None and record.moved_rows is not None else np.arange(m)
+    else:  # nonzero: the lanes in use, and the rows that bind or carry a price
+        cols = np.flatnonzero(np.abs(sol.x) > ZERO)
+        keep = np.zeros(m, dtype=bool)
+        if sol.shadow_price is not None:
+            keep |= np.abs(sol.shadow_price) > ZERO
+        if basis is not None:
+            keep |= basis.row_status != Status.BASIC
+        rows = np.flatnonzero(keep)
+
+    def pick(arr: np.ndarray | None, idx: np.ndarray) -> list:
+        return [None] * idx.size if arr is None else _clean(arr[idx])
+
+    col_status = _STATUS_LOOKUP[basis.col_status[cols]].tolist() if basis is not None else [None] * cols.size
+    row_status = _STATUS_LOOKUP[basis.row_status[rows]].tolist() if basis is not None else [None] * rows.size
+    col_names, row_names = lp.col_names, lp.row_names
+    variables = {
+        col_names[j]: {"value": v, "reduced_cost": d, "basis": s}
+        for j, v, d, s in zip(cols.tolist(), pick(sol.x, cols), pick(sol.reduced_cost, cols), col_status)
+    }
+    constraints = {
+        row_names[i]: {"activity": a, "shadow_price": y, "basis": s}
+        for i, a, y, s in zip(rows.tolist(), pick(sol.row_activity, rows), pick(sol.shadow_price, rows), row_status)
+    }
+    return {"variables": variables, "constraints": constraints}
+
+
+def render_result(
+    model_id: str,
+    record: VersionRecord,
+    sections: tuple[str, ...] = SECTIONS,
+    solution_view: str = "full",
+    changes_limit: int = 100,
+) -> dict[str, Any]:
+    """The result object of the HTTP contract for one stored version."""
+    res = record.result
+    out: dict[str, Any] = {
+        "id": model_id,
+        "version": record.version,
+        "status": res["status"],
+        "objective": res["objective"],
+    }
+    if res.get("message"):
+        out["message"] = res["message"]
+    if "solution" in sections:
+        out["solution"] = solution_json(record.lp, record.solution, record.basis, solution_view, record)
+    if "solve" in sections:
+        out["solve"] = res["solve"]
+    if "pivot_log" in sections:
+        out["pivot_log"] = res["pivot_log"]
+    if "changes" in sections:
+        changes = res.get("changes")
+        if changes is not None:
+            changes = dict(changes)
+            moved = changes.get("variables") or {}
+            if len(moved) > changes_limit:
+                changes["variables"] = dict(list(moved.items())[:changes_limit])
+                changes["truncated"] = True
+        out["changes"] = changes
+    return out
+
+
+def change_report(
+    before: VersionRecord, after_lp: LinearProgram, after: Solution, after_objective: float | None,
+    model_changes: dict[str, Any],
+) -> tuple[dict[str, Any], np.ndarray, np.ndarray]:
+    """What moved between two versions, by name: objective, variable values, counts.
+
+    Returns the JSON report and the moved column and row positions (in the new model).
+    """
+    old_lp, old = before.lp, before.solution
+    col_pos = {name: j for j, name in enumerate(old_lp.col_names)}
+    row_pos = {name: i for i, name in enumerate(old_lp.row_names)}
+    col_src = np.fromiter((col_pos.get(nm, -1) for nm in after_lp.col_names), dtype=np.int64, count=after_lp.n)
+    row_src = np.fromiter((row_pos.get(nm, -1) for nm in after_lp.row_names), dtype=np.int64, count=after_lp.m)
+
+    def carried(old_values: np.ndarray | None, src: np.ndarray) -> np.ndarray | None:
+        if old_values is None:
+            return None
+        out = np.full(src.size, np.nan)
+        out[src >= 0] = old_values[src[src >= 0]]
+        return out
+
+    old_x = carried(old.x, col_src)
+    moved_cols = moved_indices(after.x, old_x)
+    moved_rows = np.union1d(
+        moved_indices(after.row_activity, carried(old.row_activity, row_src)),
+        moved_indices(after.shadow_price, carried(old.shadow_price, row_src)),
+    ).astype(np.int32)
+
+    variables: dict[str, dict[str, float | None]] = {}
+    if after.x is not None:
+        before_vals = np.zeros(after_lp.n) if old_x is None else np.where(np.isnan(old_x), 0.0, old_x)
+        delta = after.x[moved_cols] - before_vals[moved_cols]
+        impact = np.abs(after_lp.c[moved_cols] * delta)
+        order = np.lexsort((-np.abs(delta), -impact))[:STORED_MOVES]  # biggest cost impact first
+        for k in order.tolist():
+            j = int(moved_cols[k])
+            prior = None if old_x is None or np.isnan(old_x[j]) else float(old_x[j])
+            variables[after_lp.col_names[j]] = {"before": prior, "after": _clean(after.x[j:j + 1])[0]}
+        if old.x is not None:  # removed variables that carried flow
+            kept = set(after_lp.col_names)
+            for j in np.flatnonzero(np.abs(old.x) > ZERO).tolist():
+                name = old_lp.col_names[j]
+                if name not in kept and len(variables) < STORED_MOVES:
+                    variables[name] = {"before": float(old.x[j]), "after": None}
+    prior_obj = before.result.get("objective")
+    report = {
+        "model": model_changes,
+        "objective": {
+            "before": prior_obj,
+            "after": after_objective,
+            "delta": None if prior_obj is None or after_objective is None else after_objective - prior_obj,
+        },
+        "moved": {"variables": int(moved_cols.size), "constraints": int(moved_rows.size)},
+        "variables": variables,
+        "truncated": moved_cols.size > STORED_MOVES,
+    }
+    return report, moved_cols, moved_rows
