@@ -357,7 +357,14 @@ class Simplex:
             tmax = harris[rest].min()
             group = rest[ratio[rest] <= tmax]
             need = range_[group].sum()
-            if self.opt.dual_pricing != "smallest_index" and slope - need > 0 and np.isfinite(need):
+            # flip only with slope to spare beyond the feasibility tolerance, so a
+            # row that the last breakpoint exactly repairs gets a pivot, not an
+            # "infeasible" verdict built on rounding
+            if (
+                self.opt.dual_pricing != "smallest_index"
+                and np.isfinite(need)
+                and slope - need > self.opt.primal_tol
+            ):
                 flips.append(group)
                 slope -= need
                 start += group.size
