@@ -31,7 +31,9 @@ that cannot be written as is (empty, containing whitespace, or duplicated)
 by a generated one (``_c<j>`` / ``_r<i>``) and records the original in a
 comment line ``* name-map col _c17 "DEDO3 11"`` (JSON string). Other readers
 see ordinary comments and the generated names; ``read_mps`` restores the
-originals, so ``read_mps(write_mps(lp))`` round-trips names too.
+originals, so ``read_mps(write_mps(lp))`` round-trips names too, except that
+a name repeated in the model comes back only once (later copies keep their
+generated names): a model read from MPS always has unique names.
 """
 
 from __future__ import annotations
@@ -227,21 +229,26 @@ def _negative_upper_rule(lp: LinearProgram, data: bytes) -> None:
 
 
 def _restore_names(lp: LinearProgram, data: bytes) -> None:
+    """Apply ``* name-map`` comments; a mapping that would duplicate a name is ignored."""
     if b"* name-map " not in data:
         return
-    col_pos = {name: j for j, name in enumerate(lp.col_names)}
-    row_pos = {name: i for i, name in enumerate(lp.row_names)}
+    tables = {
+        b"col": (lp.col_names, {name: j for j, name in enumerate(lp.col_names)}),
+        b"row": (lp.row_names, {name: i for i, name in enumerate(lp.row_names)}),
+    }
+    taken = {b"col": set(lp.col_names), b"row": set(lp.row_names)}
     for kind, written, original in _NAME_MAP_RE.findall(data):
         try:
             name = json.loads(original.decode("utf-8"))
         except (UnicodeDecodeError, ValueError):
             continue
-        if not isinstance(name, str):
+        names, pos = tables[kind]
+        k = pos.get(written.decode("utf-8", errors="replace"))
+        if not isinstance(name, str) or k is None or names[k] != written.decode() or name in taken[kind]:
             continue
-        table, names = (col_pos, lp.col_names) if kind == b"col" else (row_pos, lp.row_names)
-        pos = table.get(written.decode("utf-8", errors="replace"))
-        if pos is not None:
-            names[pos] = name
+        taken[kind].discard(names[k])
+        taken[kind].add(name)
+        names[k] = name
 
 
 # --------------------------------------------------------------------- writing

@@ -330,12 +330,32 @@ def test_round_trip_awkward_model():
     for kind in (" FR ", " FX ", " MI ", " UP ", " LO "):
         assert kind in text
     back = read_mps(text)
+    # Names come back except a repeated one: a model read from MPS always has
+    # unique names, so the second "dup" keeps its generated name.
+    assert back.col_names == ["plant 1 output", "dup", "_c2", "lager-München", "1", "$cash", ""]
+    back.col_names = list(lp.col_names)
     _assert_same_lp(lp, back)
     assert back.name == "awkward model"
     # Free MPS text never holds a name with whitespace.
     for line in text.splitlines():
         if line.startswith(" ") and not line.startswith("*"):
             assert "plant 1 output" not in line and "balance west" not in line
+
+
+def test_name_map_cannot_create_duplicates():
+    # Hand-edited (or hostile) name-map comments must not yield duplicate names.
+    text = (
+        "NAME N\n"
+        '* name-map col a "same"\n'
+        '* name-map col b "same"\n'
+        '* name-map col c "b"\n'
+        '* name-map row r1 "first row"\n'
+        "ROWS\n N obj\n L r1\nCOLUMNS\n    a obj 1 r1 1\n    b obj 1 r1 1\n    c obj 1 r1 1\n"
+        "RHS\n    RHS r1 4\nENDATA\n"
+    )
+    lp = read_mps(text)
+    assert lp.col_names == ["same", "b", "c"]
+    assert lp.row_names == ["first row"]
 
 
 def test_round_trip_keeps_infeasible_bounds_as_written():
