@@ -297,16 +297,20 @@ def verify_farkas(lp: LinearProgram, y: np.ndarray, tol: float = 1e-6) -> dict[s
         allt = np.concatenate(terms)
         return float(allt.sum()), float(np.max(np.abs(allt), initial=0.0)), infinite
 
-    best = None
+    best: dict[str, Any] | None = None
+    best_key = -np.inf
     for sign, side in ((1.0, "max<0"), (-1.0, "min>0")):
         value, largest, infinite = extreme(sign)
-        margin = -value if infinite == 0 else -np.inf  # value is sign*(extreme); want it < 0
         threshold = tol * max(1.0, largest)
-        rec = {"side": side, "margin": margin, "threshold": threshold, "infinite_terms": infinite}
-        if best is None or margin - threshold > best["margin"] - best["threshold"]:
-            best = rec
+        # value is the maximum of sign * (z@x - y@r); a proof needs it < 0.
+        # An infinite side has no margin (None keeps the figures JSON-safe).
+        margin = -value if infinite == 0 else None
+        key = (margin - threshold) if margin is not None else -np.inf
+        if best is None or key > best_key:
+            best = {"side": side, "margin": margin, "threshold": threshold, "infinite_terms": infinite}
+            best_key = key
     out.update(best)
-    out["passed"] = bool(best["infinite_terms"] == 0 and best["margin"] > best["threshold"])
+    out["passed"] = bool(best["margin"] is not None and best["margin"] > best["threshold"])
     if not out["passed"]:
         out["reason"] = (
             "an infinite bound meets a nonzero multiplier"
