@@ -56,6 +56,20 @@ class Factor:
                 v[r] = vr
         return v
 
+    def ftran_many(self, cols: np.ndarray) -> np.ndarray:
+        """FTRAN of several columns at once (one LU solve with k right-hand sides)."""
+        if self.m == 0:
+            return np.zeros((0, cols.shape[1]))
+        v = self.lu.solve(np.asfortranarray(cols, dtype=np.float64))
+        if v.ndim == 1:
+            v = v.reshape(-1, 1)
+        for r, idx, vals, piv in self.etas:
+            vr = v[r] / piv
+            if vr.any():
+                v[idx] -= np.outer(vals, vr)
+                v[r] = vr
+        return v
+
     def btran(self, h: np.ndarray) -> np.ndarray:
         if self.m == 0:
             return np.zeros(0)

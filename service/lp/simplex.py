@@ -54,6 +54,8 @@ AT_LOWER = int(Status.AT_LOWER)
 AT_UPPER = int(Status.AT_UPPER)
 FIXED = int(Status.FIXED)
 FREE = int(Status.FREE)
+# d must be >= 0 at lower and <= 0 at upper: infeasibility is max(-sign * d, 0)
+_DUAL_SIGN = np.array([0.0, 1.0, -1.0, 0.0, 0.0])
 
 
 class NumericalTrouble(RuntimeError):
@@ -153,7 +155,12 @@ class Simplex:
         bcols = self.basic_idx
         B = self._basis_matrix(bcols, bcols < self.n)
         self.factor = Factor(B)
-        self.timings["factorize"] += time.perf_counter() - t
+        took = time.perf_counter() - t
+        self.timings["factorize"] += took
+        # Balance refactorization cost against the growing eta file: about
+        # sqrt(2 * t_factor / t_eta) updates, t_eta ~ 15 us per eta per solve
+        # (measured on the supply-chain benchmark); never above the option.
+        self.refactor_every = int(min(self.opt.refactor_every, max(16, np.sqrt(2.0 * took / 15e-6))))
         self.events.append({"event": "refactor", "iteration": self.iteration, "reason": reason})
         self.compute_primal()
         self.compute_dual()
@@ -211,11 +218,10 @@ class Simplex:
     def dual_infeasibilities(self) -> np.ndarray:
         """Per variable: how far d is on the wrong side for its nonbasic status."""
         st = self.status
-        d = self.d
-        inf = np.zeros(self.N)
-        inf = np.where(st == AT_LOWER, np.maximum(-d, 0.0), inf)
-        inf = np.where(st == AT_UPPER, np.maximum(d, 0.0), inf)
-        inf = np.where(st == FREE, np.abs(d), inf)
+        inf = np.maximum(-self.d * _DUAL_SIGN[st], 0.0)
+        free = st == FREE
+        if free.any():
+            inf[free] = np.abs(self.d[free])
         return inf
 
     def primal_feasible(self) -> bool:
@@ -246,8 +252,10 @@ class Simplex:
     def _kind(self, j: int) -> str:
         return "variable" if j < self.n else "constraint"
 
-    def _pivot_record(self, algorithm, p, leave_bound, q, pivot, step, flips) -> dict:
-        pinf = np.abs(self.primal_infeasibilities()).sum()
+    def _pivot_record(self, algorithm, p, leave_bound, q, pivot, step, flips, infeas=None) -> dict:
+        if infeas is None:
+            infeas = self.primal_infeasibilities()
+        pinf = np.abs(infeas).sum()
         dinf = self.dual_infeasibilities().sum()
         return {
             "iteration": self.iteration,
@@ -272,7 +280,7 @@ class Simplex:
         self.basic_idx[r] = q
         self.factor.update(r, alpha_q)
         self.iteration += 1
-        if self.factor.updates >= self.opt.refactor_every:
+        if self.factor.updates >= self.refactor_every:
             self.refactor("update_limit")
 
     # ================================================================ dual
@@ -321,53 +329,55 @@ class Simplex:
             return int(cand[np.argmax(np.abs(infeas[cand]))])
         return int(cand[np.argmax(infeas[cand] ** 2 / self.dse[cand])])
 
-    def _dual_ratio_test(self, r: int, alpha_r: np.ndarray, delta: float):
+    def _dual_ratio_test(self, r: int, alpha_r: np.ndarray, nz: np.ndarray, delta: float):
         """Harris two-pass ratio test with bound flipping.
 
         Returns (q, t, flips) with q = -1 when no column can enter.
         The step t keeps every reduced cost dual feasible (within tolerance).
         """
         s = 1.0 if delta < 0 else -1.0
-        st = self.status
-        at = s * alpha_r
+        st = self.status[nz]  # nz: nonzeros of the pivot row, usually few
+        at = s * alpha_r[nz]
         ptol = self.opt.pivot_tol
         lower_ok = (st == AT_LOWER) & (at < -ptol)
         upper_ok = (st == AT_UPPER) & (at > ptol)
         free_ok = (st == FREE) & (np.abs(at) > ptol)
-        cand = np.flatnonzero(lower_ok | upper_ok | free_ok)
-        if cand.size == 0:
+        sel = np.flatnonzero(lower_ok | upper_ok | free_ok)
+        if sel.size == 0:
             return -1, 0.0, np.zeros(0, dtype=np.int64)
-        a_abs = np.abs(at[cand])
+        cand = nz[sel]
+        at = at[sel]
+        st = st[sel]
+        a_abs = np.abs(at)
         dj = self.d[cand]
         # sign-adjusted reduced cost (>= -tol for a dual feasible basis)
-        dtil = np.where(st[cand] == AT_UPPER, -dj, dj)
-        dtil = np.where(st[cand] == FREE, 0.0, dtil)
+        dtil = np.where(st == AT_UPPER, -dj, dj)
+        dtil = np.where(st == FREE, 0.0, dtil)
         ratio = dtil / a_abs
         tol = self.opt.dual_tol
         harris = (dtil + tol) / a_abs
         range_ = (self.upper[cand] - self.lower[cand]) * a_abs  # inf when not boxed
-        range_ = np.where(st[cand] == FREE, np.inf, range_)
+        range_ = np.where(st == FREE, np.inf, range_)
         slope = abs(delta)
-        order = np.argsort(ratio, kind="stable")
+        can_flip = self.opt.dual_pricing != "smallest_index"
         flips: list[np.ndarray] = []
-        start = 0
-        k = order.size
-        while start < k:
-            rest = order[start:]
+        rest = np.arange(cand.size)
+        # Pass over breakpoint groups in increasing ratio without sorting all
+        # candidates: each round takes the group inside the Harris bound of
+        # what is left (usually one or two rounds).
+        while rest.size:
+            r_ratio = ratio[rest]
             tmax = harris[rest].min()
-            group = rest[ratio[rest] <= tmax]
+            in_group = r_ratio <= tmax
+            group = rest[in_group]
             need = range_[group].sum()
             # flip only with slope to spare beyond the feasibility tolerance, so a
             # row that the last breakpoint exactly repairs gets a pivot, not an
             # "infeasible" verdict built on rounding
-            if (
-                self.opt.dual_pricing != "smallest_index"
-                and np.isfinite(need)
-                and slope - need > self.opt.primal_tol
-            ):
+            if can_flip and np.isfinite(need) and slope - need > self.opt.primal_tol:
                 flips.append(group)
                 slope -= need
-                start += group.size
+                rest = rest[~in_group]
                 continue
             # Harris pass 2: the largest |alpha| among the group
             if self.opt.dual_pricing == "smallest_index":
@@ -380,31 +390,33 @@ class Simplex:
         # every candidate could be flipped with slope to spare: dual unbounded
         return -1, 0.0, np.zeros(0, dtype=np.int64)
 
-    def _apply_flips(self, flip_idx: np.ndarray) -> None:
-        if flip_idx.size == 0:
-            return
+    def _flip_column(self, flip_idx: np.ndarray) -> np.ndarray:
+        """Af @ dx for the bound flips (to be FTRAN'd with the entering column)."""
         st = self.status
-        old = self.x[flip_idx].copy()
+        to_upper = st[flip_idx] == AT_LOWER
+        new = np.where(to_upper, self.upper[flip_idx], self.lower[flip_idx])
+        dx = np.zeros(self.N)
+        dx[flip_idx] = new - self.x[flip_idx]
+        return self.times_af(dx)
+
+    def _flip_status(self, flip_idx: np.ndarray) -> None:
+        st = self.status
         to_upper = st[flip_idx] == AT_LOWER
         st[flip_idx] = np.where(to_upper, AT_UPPER, AT_LOWER)
-        new = np.where(to_upper, self.upper[flip_idx], self.lower[flip_idx])
-        self.x[flip_idx] = new
-        dx = np.zeros(self.N)
-        dx[flip_idx] = new - old
-        col = self.times_af(dx)
-        self.x[self.basic_idx] -= self.factor.ftran(col)
+        self.x[flip_idx] = np.where(to_upper, self.upper[flip_idx], self.lower[flip_idx])
 
     def _dual(self) -> str:
         """Dual simplex from a dual feasible basis. Returns a terminal status."""
         self.algorithms.append("dual")
         ptol = self.opt.pivot_tol
+        dse = self.opt.dual_pricing == "steepest_edge"
         best_obj = -np.inf
         since_progress = 0
         perturbed = False
         trouble = 0
+        infeas = self.primal_infeasibilities()
         while True:
             self.check_limits()
-            infeas = self.primal_infeasibilities()
             r = self._choose_row(infeas)
             if r < 0:
                 return "optimal"
@@ -413,51 +425,55 @@ class Simplex:
             e = np.zeros(self.m)
             e[r] = 1.0
             rho = self.factor.btran(e)
-            if self.opt.dual_pricing == "steepest_edge":
+            if dse:
                 self.dse[r] = max(float(rho @ rho), 1e-12)
             alpha_r = self.row_product(rho)
             alpha_r[self.basic_idx] = 0.0
-            q, t, flip_idx = self._dual_ratio_test(r, alpha_r, delta)
+            nz = np.flatnonzero(alpha_r)
+            q, t, flip_idx = self._dual_ratio_test(r, alpha_r, nz, delta)
             if q < 0:
                 if self.factor.updates > 0:
                     self.refactor("confirm_infeasibility")
+                    infeas = self.primal_infeasibilities()
                     continue
-                # rho_i is exactly zero in theory for every other basic logical
-                # (rho^T B = e_r^T); drop the rounding noise there.
-                others = self.basic_idx[self.basic_idx >= self.n] - self.n
-                others = others[others != p - self.n]
-                rho = rho.copy()
-                rho[others] = 0.0
-                rho[np.abs(rho) <= 1e-11 * np.abs(rho).max()] = 0.0  # drop tolerance
-                self.farkas_rho = rho * (1.0 if delta < 0 else -1.0)
-                self.infeasible_row = r
+                self._record_farkas(rho, p, r, delta)
                 return "infeasible"
-            alpha_q = self.factor.ftran(self.column(q))
+            # one multi-column FTRAN: entering column, DSE's tau = B^-1 rho, flips
+            cols = [self.column(q)]
+            if dse:
+                cols.append(rho)
+            if flip_idx.size:
+                cols.append(self._flip_column(flip_idx))
+            sol = self.factor.ftran_many(np.column_stack(cols))
+            alpha_q = sol[:, 0]
             piv = alpha_q[r]
             if abs(piv) < ptol or abs(piv - alpha_r[q]) > 1e-6 * (1.0 + abs(piv)):
                 trouble += 1
                 if trouble > 3:
                     raise NumericalTrouble("unstable_pivot", f"pivot {piv:.3e} vs row entry {alpha_r[q]:.3e}")
                 self.refactor("pivot_mismatch")
+                infeas = self.primal_infeasibilities()
                 continue
             trouble = 0
             s = 1.0 if delta < 0 else -1.0
             # dual update: d_j += s * t * alpha_rj; leaving variable gets s * t
             if t != 0.0:
-                self.d += (s * t) * alpha_r
+                self.d[nz] += (s * t) * alpha_r[nz]
                 self.y -= (s * t) * rho
             self.d[q] = 0.0
             self.d[p] = s * t
-            # bound flips then the primal step
-            self._apply_flips(flip_idx)
+            # bound flips, then the primal step
+            if flip_idx.size:
+                self._flip_status(flip_idx)
+                self.x[self.basic_idx] -= sol[:, -1]
             bound = self.lower[p] if delta < 0 else self.upper[p]
             theta_p = (self.x[p] - bound) / piv
             self.x[self.basic_idx] -= theta_p * alpha_q
             self.x[q] += theta_p
             self.x[p] = bound
             # dual steepest edge weights (Forrest and Goldfarb 1992)
-            if self.opt.dual_pricing == "steepest_edge":
-                tau = self.factor.ftran(rho)
+            if dse:
+                tau = sol[:, 1]
                 wr = self.dse[r]
                 ratio = alpha_q / piv
                 self.dse = np.maximum(self.dse - 2.0 * ratio * tau + ratio**2 * wr, 1e-8)
@@ -465,9 +481,10 @@ class Simplex:
             leave_status = AT_LOWER if delta < 0 else AT_UPPER
             self.basis_change(r, q, alpha_q, leave_status)
             self.x[p] = bound
+            infeas = self.primal_infeasibilities()
             self.log(
                 self._pivot_record(
-                    "dual", p, "lower" if delta < 0 else "upper", q, piv, theta_p, flip_idx.size
+                    "dual", p, "lower" if delta < 0 else "upper", q, piv, theta_p, flip_idx.size, infeas
                 )
             )
             obj = float(self.cost @ self.x)
@@ -480,6 +497,17 @@ class Simplex:
                     self.perturb_costs()
                     perturbed = True
                     since_progress = 0
+
+    def _record_farkas(self, rho: np.ndarray, p: int, r: int, delta: float) -> None:
+        # rho_i is exactly zero in theory for every other basic logical
+        # (rho^T B = e_r^T); drop the rounding noise there.
+        others = self.basic_idx[self.basic_idx >= self.n] - self.n
+        others = others[others != p - self.n]
+        rho = rho.copy()
+        rho[others] = 0.0
+        rho[np.abs(rho) <= 1e-11 * np.abs(rho).max()] = 0.0  # drop tolerance
+        self.farkas_rho = rho * (1.0 if delta < 0 else -1.0)
+        self.infeasible_row = r
 
     # ================================================================ primal
     def perturb_bounds(self) -> None:
