@@ -124,8 +124,10 @@ def normalize_nonbasic(basis: Basis, lp: LinearProgram) -> Basis:
         status[at_lo & ~lo_ok & ~up_ok] = Status.FREE
         status[at_up & ~up_ok & lo_ok] = Status.AT_LOWER
         status[at_up & ~up_ok & ~lo_ok] = Status.FREE
+        # a FREE or FIXED status on a variable whose bounds changed takes the
+        # natural status of its new bounds (FREE when both are infinite)
         natural = nonbasic_status(lower, upper)
-        status[free & (lo_ok | up_ok)] = natural[free & (lo_ok | up_ok)]
+        status[free] = natural[free]
     return out
 
 

@@ -133,20 +133,12 @@ def test_normalize_rows_like_columns():
     assert list(out.row_status) == [F, X, U]
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="bug: normalize_nonbasic leaves FIXED on a variable whose bounds became (-inf, inf)",
-)
 def test_normalize_fixed_variable_made_free():
     lp = lp_with_bounds(col_lower=[-INF], col_upper=[INF])
     out = normalize_nonbasic(Basis([X], [B]), lp)
     assert list(out.col_status) == [F]
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="bug: a FIXED status left on a now-free column gives x = -inf, the warm start dies and falls back",
-)
 def test_reoptimize_after_unfixing_to_free_stays_warm():
     # x0 was fixed (stored status FIXED); the change removes both its bounds.
     lp = LinearProgram(
