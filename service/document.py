@@ -401,6 +401,10 @@ class ChangeSet:
     sense: bool = False
     objective_offset: bool = False
     name: bool = False
+    # for each column/row of the new model, its position in the old one (-1: new); lets callers
+    # carry values across without matching names again
+    col_source: np.ndarray | None = field(default=None, repr=False, compare=False)
+    row_source: np.ndarray | None = field(default=None, repr=False, compare=False)
 
     LISTS = ("rows_added", "rows_removed", "columns_added", "columns_removed", "row_bounds",
              "column_bounds", "costs", "coefficients")
@@ -474,8 +478,8 @@ def apply_patch(lp: LinearProgram, patch: Any) -> tuple[LinearProgram, ChangeSet
         changes.objective_offset = offset != lp.offset
 
     n_old, m_old = lp.n, lp.m
-    col_index = {nm: j for j, nm in enumerate(lp.col_names)}
-    row_index = {nm: i for i, nm in enumerate(lp.row_names)}
+    col_index = name_index(lp, "col_names")
+    row_index = name_index(lp, "row_names")
 
     # ---- variables: removal marks, edits of existing ones, new ones appended in patch order
     col_keep = np.ones(n_old, dtype=bool)
@@ -529,9 +533,7 @@ def apply_patch(lp: LinearProgram, patch: Any) -> tuple[LinearProgram, ChangeSet
     kept_cols = np.flatnonzero(col_keep)
     if kept_cols.size + len(new_cols) == 0:
         errs.add("/variables", "a model needs at least one variable")
-    final_col = {lp.col_names[j]: k for k, j in enumerate(kept_cols.tolist())}
-    for k, (vname, *_rest) in enumerate(new_cols):
-        final_col[vname] = kept_cols.size + k
+    final_col = _FinalColumns(col_index, col_keep, kept_cols, new_col_pos)
 
     # ---- constraints
     row_keep = np.ones(m_old, dtype=bool)
@@ -622,11 +624,6 @@ def apply_patch(lp: LinearProgram, patch: Any) -> tuple[LinearProgram, ChangeSet
     row_map = np.full(m_old, -1, dtype=np.int64)
     row_map[kept_rows] = np.arange(kept_rows.size)
 
-    coo = lp.A.tocoo()
-    r_old, c_old, v_old = coo.row.astype(np.int64), coo.col.astype(np.int64), coo.data
-    keep = (row_map[r_old] >= 0) & (col_map[c_old] >= 0)
-    if rewritten:
-        keep &= ~np.isin(r_old, np.fromiter(rewritten.keys(), dtype=np.int64))
     extra_r: list[int] = []
     extra_c: list[int] = []
     extra_v: list[float] = []
@@ -641,10 +638,23 @@ def apply_patch(lp: LinearProgram, patch: Any) -> tuple[LinearProgram, ChangeSet
             extra_r.append(kept_rows.size + k)
             extra_c.append(final_col[vname])
             extra_v.append(value)
-    rows = np.concatenate([row_map[r_old[keep]], np.asarray(extra_r, dtype=np.int64)])
-    cols = np.concatenate([col_map[c_old[keep]], np.asarray(extra_c, dtype=np.int64)])
-    vals = np.concatenate([v_old[keep], np.asarray(extra_v, dtype=float)])
-    A_new = sp.csc_matrix((vals, (rows, cols)), shape=(m_new, n_new))
+    er = np.asarray(extra_r, dtype=np.int64)
+    ec = np.asarray(extra_c, dtype=np.int64)
+    ev = np.asarray(extra_v, dtype=float)
+    if not rewritten and kept_cols.size == n_old and kept_rows.size == m_old:
+        A_new = _append_entries(lp.A, er, ec, ev, (m_new, n_new))
+    else:
+        coo = lp.A.tocoo()
+        r_old, c_old, v_old = coo.row.astype(np.int64), coo.col.astype(np.int64), coo.data
+        keep = (row_map[r_old] >= 0) & (col_map[c_old] >= 0)
+        if rewritten:
+            keep &= ~np.isin(r_old, np.fromiter(rewritten.keys(), dtype=np.int64))
+        rows = np.concatenate([row_map[r_old[keep]], er])
+        cols = np.concatenate([col_map[c_old[keep]], ec])
+        vals = np.concatenate([v_old[keep], ev])
+        A_new = sp.csc_matrix((vals, (rows, cols)), shape=(m_new, n_new))
+    changes.col_source = np.concatenate([kept_cols, np.full(len(new_cols), -1, dtype=np.int64)])
+    changes.row_source = np.concatenate([kept_rows, np.full(len(new_rows), -1, dtype=np.int64)])
 
     def extend(old: np.ndarray, keep_idx: np.ndarray, extra: list[float]) -> np.ndarray:
         return np.concatenate([old[keep_idx], np.asarray(extra, dtype=float)])
@@ -658,11 +668,80 @@ def apply_patch(lp: LinearProgram, patch: Any) -> tuple[LinearProgram, ChangeSet
         row_upper=extend(row_upper, kept_rows, [r[3] for r in new_rows]),
         sense=sense,
         offset=offset,
-        col_names=[lp.col_names[j] for j in kept_cols.tolist()] + [v[0] for v in new_cols],
-        row_names=[lp.row_names[i] for i in kept_rows.tolist()] + [r[0] for r in new_rows],
+        col_names=_kept(lp.col_names, kept_cols) + [v[0] for v in new_cols],
+        row_names=_kept(lp.row_names, kept_rows) + [r[0] for r in new_rows],
         name=name,
     )
+    # hand the name index on when only appends happened: the next patch of this version needs it
+    for attr, index, kept, added in (("col_names", col_index, kept_cols, new_cols),
+                                     ("row_names", row_index, kept_rows, new_rows)):
+        if kept.size == len(index):
+            carried = dict(index)
+            carried.update({item[0]: len(index) + k for k, item in enumerate(added)})
+            new_lp.__dict__[f"_index_{attr}"] = (getattr(new_lp, attr), carried)
     return new_lp, changes
+
+
+def name_index(lp: LinearProgram, attr: str) -> dict[str, int]:
+    """Position of each name, built once per model object (models are never changed in place)."""
+    names = getattr(lp, attr)
+    cached = lp.__dict__.get(f"_index_{attr}")
+    if cached is not None and cached[0] is names and len(cached[1]) == len(names):
+        return cached[1]
+    index = {nm: k for k, nm in enumerate(names)}
+    lp.__dict__[f"_index_{attr}"] = (names, index)
+    return index
+
+
+class _FinalColumns:
+    """Name -> position in the patched model, without building a dict of every name."""
+
+    def __init__(self, index: dict[str, int], keep: np.ndarray, kept: np.ndarray, new: dict[str, int]) -> None:
+        self.index, self.keep, self.new = index, keep, new
+        self.n_kept = kept.size
+        self.shift = None
+        if kept.size != keep.size:
+            self.shift = np.cumsum(keep) - 1  # old position -> new position, for kept columns
+
+    def __contains__(self, name: str) -> bool:
+        j = self.index.get(name)
+        return (j is not None and bool(self.keep[j])) or name in self.new
+
+    def __getitem__(self, name: str) -> int:
+        j = self.index.get(name)
+        if j is not None and self.keep[j]:
+            return j if self.shift is None else int(self.shift[j])
+        return self.n_kept + self.new[name]
+
+
+def _kept(names: list[str], kept: np.ndarray) -> list[str]:
+    return list(names) if kept.size == len(names) else [names[k] for k in kept.tolist()]
+
+
+def _append_entries(
+    A: sp.csc_matrix, rows: np.ndarray, cols: np.ndarray, vals: np.ndarray, shape: tuple[int, int]
+) -> sp.csc_matrix:
+    """A with new rows and columns appended, given the new entries (all in new rows or new columns).
+
+    Works on the CSC arrays directly: new row indices are larger than every
+    old one, so each entry goes at the end of its column, and the matrix never
+    passes through COO. This keeps a one-row change to a big model cheap.
+    """
+    A = A.tocsc()
+    m_old, n_old = A.shape
+    order = np.lexsort((rows, cols))
+    rows, cols, vals = rows[order], cols[order], vals[order]
+    old = cols < n_old
+    pos = A.indptr[cols[old] + 1]
+    data = np.insert(A.data, pos, vals[old])
+    indices = np.insert(A.indices.astype(np.int64), pos, rows[old])
+    data = np.concatenate([data, vals[~old]])
+    indices = np.concatenate([indices, rows[~old]])
+    counts = np.diff(A.indptr).astype(np.int64)
+    counts = np.concatenate([counts, np.zeros(shape[1] - n_old, dtype=np.int64)])
+    counts += np.bincount(cols, minlength=shape[1])
+    indptr = np.concatenate([[0], np.cumsum(counts)])
+    return sp.csc_matrix((data, indices, indptr), shape=shape)
 
 
 def _patch_terms(

@@ -230,7 +230,8 @@ class ModelService:
             moved_rows = np.union1d(moved_indices(sol.row_activity, None), moved_indices(sol.shadow_price, None))
             moved_rows = moved_rows.astype(np.int32)
         else:
-            report, moved_cols, moved_rows = change_report(moved_from, lp, sol, objective, changes.summary())
+            report, moved_cols, moved_rows = change_report(moved_from, lp, sol, objective, changes.summary(),
+                                                           changes.col_source, changes.row_source)
         result = result_record(res, lp, report)
         change_kind = None if changes is None else {"kind": changes.kind(), **changes.counts(),
                                                     "sense": changes.sense,

@@ -214,17 +214,21 @@ def render_result(
 
 def change_report(
     before: VersionRecord, after_lp: LinearProgram, after: Solution, after_objective: float | None,
-    model_changes: dict[str, Any],
+    model_changes: dict[str, Any], col_src: np.ndarray | None = None, row_src: np.ndarray | None = None,
 ) -> tuple[dict[str, Any], np.ndarray, np.ndarray]:
     """What moved between two versions, by name: objective, variable values, counts.
 
-    Returns the JSON report and the moved column and row positions (in the new model).
+    ``col_src``/``row_src`` give each new column/row's old position (-1: new);
+    without them positions are matched by name. Returns the JSON report and
+    the moved column and row positions (in the new model).
     """
     old_lp, old = before.lp, before.solution
-    col_pos = {name: j for j, name in enumerate(old_lp.col_names)}
-    row_pos = {name: i for i, name in enumerate(old_lp.row_names)}
-    col_src = np.fromiter((col_pos.get(nm, -1) for nm in after_lp.col_names), dtype=np.int64, count=after_lp.n)
-    row_src = np.fromiter((row_pos.get(nm, -1) for nm in after_lp.row_names), dtype=np.int64, count=after_lp.m)
+    if col_src is None:
+        col_pos = {name: j for j, name in enumerate(old_lp.col_names)}
+        col_src = np.fromiter((col_pos.get(nm, -1) for nm in after_lp.col_names), dtype=np.int64, count=after_lp.n)
+    if row_src is None:
+        row_pos = {name: i for i, name in enumerate(old_lp.row_names)}
+        row_src = np.fromiter((row_pos.get(nm, -1) for nm in after_lp.row_names), dtype=np.int64, count=after_lp.m)
 
     def carried(old_values: np.ndarray | None, src: np.ndarray) -> np.ndarray | None:
         if old_values is None:
@@ -251,11 +255,11 @@ def change_report(
             prior = None if old_x is None or np.isnan(old_x[j]) else float(old_x[j])
             variables[after_lp.col_names[j]] = {"before": prior, "after": _clean(after.x[j:j + 1])[0]}
         if old.x is not None:  # removed variables that carried flow
-            kept = set(after_lp.col_names)
-            for j in np.flatnonzero(np.abs(old.x) > ZERO).tolist():
-                name = old_lp.col_names[j]
-                if name not in kept and len(variables) < STORED_MOVES:
-                    variables[name] = {"before": float(old.x[j]), "after": None}
+            removed = np.ones(old_lp.n, dtype=bool)
+            removed[col_src[col_src >= 0]] = False
+            for j in np.flatnonzero(removed & (np.abs(old.x) > ZERO)).tolist():
+                if len(variables) < STORED_MOVES:
+                    variables[old_lp.col_names[j]] = {"before": float(old.x[j]), "after": None}
     prior_obj = before.result.get("objective")
     report = {
         "model": model_changes,

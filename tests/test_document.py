@@ -141,6 +141,7 @@ def test_apply_patch_adds_a_constraint_and_classifies_it_dual():
     np.testing.assert_array_equal(new.A.toarray()[2], [0, 1, 0])
     assert changes.rows_added == ["crate_limit"] and changes.kind() == "dual"
     assert lp.m == 2  # the stored model is untouched
+    assert changes.row_source.tolist() == [0, 1, -1] and changes.col_source.tolist() == [0, 1, 2]
 
 
 def test_apply_patch_adds_a_variable_and_classifies_it_primal():
@@ -174,6 +175,7 @@ def test_apply_patch_removals_bounds_and_costs():
     assert changes.row_bounds == ["assembly_hours"] and changes.coefficients == ["assembly_hours"]
     assert changes.column_bounds == ["bikes"] and changes.costs == ["bikes"]
     assert changes.sense and changes.objective_offset
+    assert changes.col_source.tolist() == [0, 1] and changes.row_source.tolist() == [0]
 
 
 def test_apply_patch_that_changes_nothing_is_empty():
