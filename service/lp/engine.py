@@ -218,8 +218,14 @@ def repair_basis(lp: LinearProgram, basis: Basis) -> tuple[Basis, dict | None]:
             return basis, None
         except SingularBasis:
             pass
+    # Structural repair first: a maximum matching of rows to candidate basic
+    # columns (Hopcroft-Karp); unmatched rows get their logical. It is sparse,
+    # fast at any size, and fixes the usual damage (rows or columns removed).
+    repaired = _structural_repair(lp, status, basic)
+    if repaired is not None:
+        return repaired
     if m > DENSE_REPAIR_LIMIT:
-        raise SingularBasis(f"basis needs repair and the model has more than {DENSE_REPAIR_LIMIT} rows")
+        raise SingularBasis(f"basis needs numerical repair and the model has more than {DENSE_REPAIR_LIMIT} rows")
     struct = basic[basic < n]
     M = lp.A[:, struct].toarray() if struct.size else np.zeros((m, 0))
     norms = np.linalg.norm(M, axis=0)
@@ -249,11 +255,43 @@ def repair_basis(lp: LinearProgram, basis: Basis) -> tuple[Basis, dict | None]:
     out = _natural_for(out, lp, dropped)
     report = {
         "repaired": True,
+        "method": "rank_revealing_qr",
         "columns_dropped": [lp.col_names[j] for j in dropped if j < n][:50],
         "logicals_added": [lp.row_names[i] for i in rows if not was_basic[i]][:50],
         "basic_before": int(basic.size),
     }
     Factor(_basis_matrix(lp, np.flatnonzero(np.concatenate([out.col_status, out.row_status]) == Status.BASIC)))
+    return out, report
+
+
+def _structural_repair(lp: LinearProgram, status: np.ndarray, basic: np.ndarray) -> tuple[Basis, dict] | None:
+    from scipy.sparse.csgraph import maximum_bipartite_matching
+
+    from .factor import Factor
+
+    n = lp.n
+    M = _basis_matrix(lp, basic)
+    M.eliminate_zeros()
+    match = maximum_bipartite_matching(M.tocsr(), perm_type="column")
+    keep = basic[match[match >= 0]]
+    rows = np.flatnonzero(match < 0)
+    new_basic = np.union1d(keep, n + rows)
+    try:
+        Factor(_basis_matrix(lp, new_basic))
+    except SingularBasis:
+        return None
+    new_status = status.copy()
+    dropped = np.setdiff1d(basic, new_basic)
+    new_status[dropped] = Status.AT_LOWER
+    new_status[new_basic] = Status.BASIC
+    out = _natural_for(Basis(new_status[:n], new_status[n:]), lp, dropped)
+    report = {
+        "repaired": True,
+        "method": "structural",
+        "columns_dropped": [lp.col_names[j] if j < n else lp.row_names[j - n] for j in dropped][:50],
+        "logicals_added": [lp.row_names[i] for i in rows if status[n + i] != Status.BASIC][:50],
+        "basic_before": int(basic.size),
+    }
     return out, report
 
 
