@@ -522,13 +522,8 @@ class Simplex:
         self.events.append({"event": "perturb", "iteration": self.iteration, "reason": "primal_stall"})
 
     def _choose_column(self) -> int:
-        st = self.status
-        d = self.d
-        tol = self.opt.dual_tol
-        score = np.where((st == AT_LOWER) & (d < -tol), -d, 0.0)
-        score = np.where((st == AT_UPPER) & (d > tol), d, score)
-        score = np.where((st == FREE) & (np.abs(d) > tol), np.abs(d), score)
-        cand = np.flatnonzero(score > 0)
+        score = self.dual_infeasibilities()  # how attractive each nonbasic is
+        cand = np.flatnonzero(score > self.opt.dual_tol)
         if cand.size == 0:
             return -1
         if self.opt.primal_pricing == "devex":
@@ -614,15 +609,15 @@ class Simplex:
             # dual update along the pivot row
             dq = self.d[q]
             alpha_r[self.basic_idx] = 0.0
-            self.d -= (dq / piv) * alpha_r
+            nz = np.flatnonzero(alpha_r)
+            self.d[nz] -= (dq / piv) * alpha_r[nz]
             self.y += (dq / piv) * rho
             self.d[p] = -dq / piv
             self.d[q] = 0.0
             # devex reference weights (Harris 1973), simplified update
             if self.opt.primal_pricing == "devex":
                 wq = self.devex[q]
-                ratio2 = (alpha_r / piv) ** 2 * wq
-                self.devex = np.maximum(self.devex, ratio2)
+                self.devex[nz] = np.maximum(self.devex[nz], (alpha_r[nz] / piv) ** 2 * wq)
                 self.devex[p] = max(wq / piv**2, 1.0)
             self.basis_change(r, q, alpha_q, leave_status)
             self.x[p] = bound
