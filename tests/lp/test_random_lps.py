@@ -41,28 +41,35 @@ ROW_TYPES = ("eq", "le", "ge", "range", "free")
 
 # --------------------------------------------------------------------------- reference and checks
 def reference(lp: LinearProgram) -> tuple[str, float | None]:
-    """Reference solve: scipy.optimize.linprog(method="highs"), presolve off."""
+    """Reference solve: scipy.optimize.linprog(method="highs").
+
+    Presolve off first, so that it tells infeasible from unbounded; on the rare model where HiGHS then
+    ends with an unknown status (seen with several free rows), once more with presolve on.
+    """
     A = lp.A.tocsr()
     eq = lp.row_lower == lp.row_upper
     up = ~eq & np.isfinite(lp.row_upper)
     lo = ~eq & np.isfinite(lp.row_lower)
     A_ub = sp.vstack([A[up], -A[lo]], format="csr")
     b_ub = np.concatenate([lp.row_upper[up], -lp.row_lower[lo]])
-    res = linprog(
-        lp.sense * lp.c,
-        A_ub=A_ub if A_ub.shape[0] else None,
-        b_ub=b_ub if A_ub.shape[0] else None,
-        A_eq=A[eq] if eq.any() else None,
-        b_eq=lp.row_lower[eq] if eq.any() else None,
-        bounds=list(
-            zip(
-                np.where(np.isfinite(lp.col_lower), lp.col_lower, None),
-                np.where(np.isfinite(lp.col_upper), lp.col_upper, None),
-            )
-        ),  # fmt: skip
-        method="highs",
-        options={"presolve": False},
-    )
+    for presolve in (False, True):
+        res = linprog(
+            lp.sense * lp.c,
+            A_ub=A_ub if A_ub.shape[0] else None,
+            b_ub=b_ub if A_ub.shape[0] else None,
+            A_eq=A[eq] if eq.any() else None,
+            b_eq=lp.row_lower[eq] if eq.any() else None,
+            bounds=list(
+                zip(
+                    np.where(np.isfinite(lp.col_lower), lp.col_lower, None),
+                    np.where(np.isfinite(lp.col_upper), lp.col_upper, None),
+                )
+            ),  # fmt: skip
+            method="highs",
+            options={"presolve": presolve},
+        )
+        if res.status in (0, 2, 3):
+            break
     status = {0: "optimal", 2: "infeasible", 3: "unbounded"}.get(res.status, f"reference status {res.status}")
     objective = float(lp.sense * res.fun + lp.offset) if res.status == 0 else None
     return status, objective
