@@ -40,18 +40,26 @@ def reoptimize(
     options: SolveOptions | None = None,
     *,
     change_summary: str = "",
+    state=None,
 ) -> SolveResult:
-    """Warm re-optimization from ``basis`` (already carried over to ``lp``'s shape)."""
+    """Warm re-optimization from ``basis`` (already carried over to ``lp``'s shape).
+
+    ``state`` is the ``SolveResult.state`` of the previous solve of the same
+    model; when the change only added rows or moved costs and bounds, its
+    scaling and factorization are reused instead of refactorizing.
+    """
     options = options or SolveOptions()
     if basis.n != lp.n or basis.m != lp.m:
         raise ValueError("basis shape does not match the model; carry it over with remap() first")
     basis = normalize_nonbasic(basis, lp)
+    reason = change_summary or "warm start from the stored basis"
+    if Simplex.reuse_applies(lp, basis, state, options):
+        return _builtin(lp, basis, options, warm=True, reason=reason, state=state)
     repair = None
     try:
         basis, repair = repair_basis(lp, basis)
     except SingularBasis as exc:
         return _highs(lp, options, fallback={"reason": "basis_repair_failed", "detail": str(exc)})
-    reason = change_summary or "warm start from the stored basis"
     res = _builtin(lp, basis, options, warm=True, reason=reason)
     if repair:
         res.check["basis_repair"] = repair
@@ -73,7 +81,9 @@ def _highs(lp: LinearProgram, options: SolveOptions, fallback: dict | None) -> S
     return res
 
 
-def _builtin(lp: LinearProgram, basis: Basis, options: SolveOptions, *, warm: bool, reason: str) -> SolveResult:
+def _builtin(
+    lp: LinearProgram, basis: Basis, options: SolveOptions, *, warm: bool, reason: str, state=None
+) -> SolveResult:
     t = time.perf_counter()
     if lp.trivially_inconsistent_bounds():
         bad = lp.trivially_inconsistent_bounds()
@@ -81,7 +91,7 @@ def _builtin(lp: LinearProgram, basis: Basis, options: SolveOptions, *, warm: bo
             lp, options, warm, f"lower bound above upper bound for {', '.join(bad[:5])}", t, INFEASIBLE
         )
     try:
-        sim = Simplex(lp, basis, options)
+        sim = Simplex(lp, basis, options, state)
         out = sim.run()
     except (NumericalTrouble, SingularBasis) as exc:
         why = getattr(exc, "reason", "singular_basis")
@@ -108,6 +118,7 @@ def _builtin(lp: LinearProgram, basis: Basis, options: SolveOptions, *, warm: bo
         timings=dict(out.timings),
         farkas=out.farkas,
         ray=out.ray,
+        state=out.state,
     )
     res.timings["simplex"] = time.perf_counter() - t
     _attach_check(lp, res, options)

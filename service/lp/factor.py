@@ -8,9 +8,21 @@ column r (product form of the inverse, Dantzig and Orchard-Hays 1954).
 
     FTRAN: solve B v = a      (apply B0^-1, then the etas in order)
     BTRAN: solve B^T h = e    (apply the etas transposed in reverse, then B0^-T)
+
+``BorderedFactor`` reuses a finished factorization when rows are appended to
+the model with their logicals basic (the common "add a constraint" change):
+
+    B' = [[B, 0],
+          [C, -I]]      C = the new rows restricted to B's basic columns
+
+so B' v = a gives v1 = B^-1 a1, v2 = C v1 - a2, and B'^T h = e gives
+h2 = -e2, h1 = B^-T (e1 + C^T e2). The base factorization is never modified,
+so one cached factorization can serve several requests.
 """
 
 from __future__ import annotations
+
+import time
 
 import numpy as np
 import scipy.sparse as sp
@@ -21,33 +33,29 @@ class SingularBasis(RuntimeError):
     """The basis matrix is singular or too ill-conditioned to factorize."""
 
 
-class Factor:
-    def __init__(self, B: sp.csc_matrix) -> None:
-        self.m = B.shape[0]
+class _EtaFile:
+    """Product-form updates on top of a base solver (``_solve``/``_solve_t``)."""
+
+    m: int
+
+    def __init__(self) -> None:
         self.etas: list[tuple[int, np.ndarray, np.ndarray, float]] = []
-        if self.m == 0:
-            self.lu = None
-            return
-        try:
-            self.lu = splu(
-                sp.csc_matrix(B),
-                permc_spec="COLAMD",
-                options={"SymmetricMode": False},
-            )
-        except RuntimeError as exc:  # "Factor is exactly singular"
-            raise SingularBasis(str(exc)) from exc
-        udiag = np.abs(self.lu.U.diagonal())
-        if udiag.size and (udiag.min() <= 1e-11 * max(1.0, udiag.max()) or not np.isfinite(udiag).all()):
-            raise SingularBasis("basis matrix is numerically singular")
 
     @property
     def updates(self) -> int:
+        """Updates applied since the last true factorization (base included)."""
         return len(self.etas)
+
+    def _solve(self, a: np.ndarray) -> np.ndarray:  # B0^-1 a, a may be 2-D
+        raise NotImplementedError
+
+    def _solve_t(self, h: np.ndarray) -> np.ndarray:  # B0^-T h
+        raise NotImplementedError
 
     def ftran(self, a: np.ndarray) -> np.ndarray:
         if self.m == 0:
             return np.zeros(0)
-        v = self.lu.solve(np.asarray(a, dtype=np.float64))
+        v = self._solve(np.asarray(a, dtype=np.float64))
         for r, idx, vals, piv in self.etas:
             vr = v[r]
             if vr != 0.0:
@@ -60,7 +68,7 @@ class Factor:
         """FTRAN of several columns at once (one LU solve with k right-hand sides)."""
         if self.m == 0:
             return np.zeros((0, cols.shape[1]))
-        v = self.lu.solve(np.asfortranarray(cols, dtype=np.float64))
+        v = self._solve(np.asfortranarray(cols, dtype=np.float64))
         if v.ndim == 1:
             v = v.reshape(-1, 1)
         for r, idx, vals, piv in self.etas:
@@ -76,10 +84,72 @@ class Factor:
         h = np.array(h, dtype=np.float64, copy=True)
         for r, idx, vals, piv in reversed(self.etas):
             h[r] = (h[r] - vals @ h[idx]) / piv
-        return self.lu.solve(h, trans="T")
+        return self._solve_t(h)
 
     def update(self, r: int, alpha_q: np.ndarray) -> None:
         """Record the basis change in row r with the FTRAN'd entering column."""
         nz = np.flatnonzero(alpha_q)
         nz = nz[nz != r]
         self.etas.append((r, nz, alpha_q[nz].copy(), float(alpha_q[r])))
+
+
+class Factor(_EtaFile):
+    def __init__(self, B: sp.csc_matrix) -> None:
+        super().__init__()
+        started = time.perf_counter()
+        self.m = B.shape[0]
+        self.depth = 0
+        self.seconds = 0.0
+        if self.m == 0:
+            self.lu = None
+            return
+        try:
+            self.lu = splu(
+                sp.csc_matrix(B),
+                permc_spec="COLAMD",
+                options={"SymmetricMode": False},
+            )
+        except RuntimeError as exc:  # "Factor is exactly singular"
+            raise SingularBasis(str(exc)) from exc
+        self.seconds = time.perf_counter() - started  # what a refactorization costs here
+        udiag = np.abs(self.lu.U.diagonal())
+        if udiag.size and (udiag.min() <= 1e-11 * max(1.0, udiag.max()) or not np.isfinite(udiag).all()):
+            raise SingularBasis("basis matrix is numerically singular")
+
+    def _solve(self, a: np.ndarray) -> np.ndarray:
+        return self.lu.solve(a)
+
+    def _solve_t(self, h: np.ndarray) -> np.ndarray:
+        return self.lu.solve(h, trans="T")
+
+
+class BorderedFactor(_EtaFile):
+    """A finished factorization extended by appended rows with basic logicals."""
+
+    def __init__(self, base: _EtaFile, C: sp.csr_matrix) -> None:
+        super().__init__()
+        self.base = base
+        self.C = sp.csr_matrix(C)
+        self.CT = sp.csr_matrix(self.C.T)
+        self.m0 = base.m
+        self.m = base.m + self.C.shape[0]
+        self.depth = getattr(base, "depth", 0) + 1
+        self.seconds = getattr(base, "seconds", 0.0)
+
+    @property
+    def updates(self) -> int:
+        return self.base.updates + len(self.etas)
+
+    def _solve(self, a: np.ndarray) -> np.ndarray:
+        m0 = self.m0
+        if a.ndim == 1:
+            v1 = self.base.ftran(a[:m0])
+            return np.concatenate([v1, self.C @ v1 - a[m0:]])
+        v1 = self.base.ftran_many(a[:m0])
+        return np.vstack([v1, self.C @ v1 - a[m0:]])
+
+    def _solve_t(self, h: np.ndarray) -> np.ndarray:
+        m0 = self.m0
+        h2 = h[m0:]
+        h1 = self.base.btran(h[:m0] + self.CT @ h2)
+        return np.concatenate([h1, -h2])

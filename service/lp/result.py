@@ -82,3 +82,4 @@ class SolveResult:
     ray: np.ndarray | None = None  # column direction proving unboundedness
     ranging: Ranging | None = None
     message: str = ""
+    state: Any = None  # engine's warm state for the next re-optimization (in-process only)

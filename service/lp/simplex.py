@@ -44,7 +44,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from .basis import Basis, Status
-from .factor import Factor, SingularBasis
+from .factor import BorderedFactor, Factor, SingularBasis
 from .model import LinearProgram
 from .result import SolveOptions
 from .scaling import Scaling, compute_scaling, scale_matrix
@@ -74,6 +74,32 @@ class LimitReached(RuntimeError):
 
 
 @dataclass
+class EngineState:
+    """What a finished solve leaves behind for the next re-optimization of the
+    same model: scaling, scaled matrix and the final factorization. Opaque to
+    callers; never modified once made (a later solve wraps it, see
+    factor.BorderedFactor)."""
+
+    A: sp.csc_matrix  # the unscaled matrix this state belongs to
+    scaling: Scaling
+    A_scaled: sp.csc_matrix
+    basic_idx: np.ndarray
+    factor: object
+
+
+MAX_REUSE_DEPTH = 6  # bordered layers on one factorization before a fresh one
+
+
+def _refactor_interval(factor, options: SolveOptions) -> int:
+    """Updates between refactorizations, balancing the factorization's cost
+    against the growing eta file: about sqrt(2 * t_factor / t_eta) with
+    t_eta ~ 15 us per eta per solve (measured on the supply-chain benchmark),
+    at least 16 and never above the option."""
+    took = getattr(factor, "seconds", 0.0)
+    return int(min(options.refactor_every, max(16, np.sqrt(2.0 * took / 15e-6))))
+
+
+@dataclass
 class SimplexOutcome:
     status: str  # optimal / infeasible / unbounded / iteration_limit / time_limit
     x: np.ndarray  # structural values, unscaled
@@ -87,12 +113,15 @@ class SimplexOutcome:
     ray: np.ndarray | None = None
     events: list[dict] = field(default_factory=list)
     timings: dict = field(default_factory=dict)
+    state: EngineState | None = None
 
 
 class Simplex:
     """One solve of one model from one starting basis."""
 
-    def __init__(self, lp: LinearProgram, basis: Basis, options: SolveOptions) -> None:
+    def __init__(
+        self, lp: LinearProgram, basis: Basis, options: SolveOptions, state: EngineState | None = None
+    ) -> None:
         self.t0 = time.perf_counter()
         self.lp = lp
         self.opt = options
@@ -100,10 +129,18 @@ class Simplex:
         self.m, self.n, self.N = m, n, n + m
         if basis.n != n or basis.m != m:
             raise ValueError("basis does not match the model's shape")
-
-        self.sc = compute_scaling(lp.A) if options.scale else Scaling(np.ones(m), np.ones(n))
+        self.status = np.concatenate([basis.col_status, basis.row_status]).astype(np.int8)
+        self._basis_in = basis
+        self.factor = None
+        self.reused = False
+        self.refactor_every = options.refactor_every
+        self.timings = {"factorize": 0.0}
+        if state is not None and options.scale:
+            self.reused = self._reuse(state)
+        if not self.reused:
+            self.sc = compute_scaling(lp.A) if options.scale else Scaling(np.ones(m), np.ones(n))
+            self.A = scale_matrix(lp.A, self.sc) if options.scale else sp.csc_matrix(lp.A)
         R, S = self.sc.row, self.sc.col
-        self.A = scale_matrix(lp.A, self.sc) if options.scale else sp.csc_matrix(lp.A)
         self.AT = sp.csr_matrix(self.A.T)  # row-wise copy for pivot rows
         self.cost_true = np.concatenate([lp.sense * lp.c * S, np.zeros(m)])
         self.cost = self.cost_true.copy()
@@ -114,11 +151,11 @@ class Simplex:
         self.cost_shifted = False
         self.bounds_shifted = False
 
-        self.status = np.concatenate([basis.col_status, basis.row_status]).astype(np.int8)
-        basic = np.flatnonzero(self.status == BASIC)
-        if basic.size != m:
-            raise SingularBasis(f"basis has {basic.size} basic variables for {m} rows")
-        self.basic_idx = basic.astype(np.int64)
+        if not self.reused:
+            basic = np.flatnonzero(self.status == BASIC)
+            if basic.size != m:
+                raise SingularBasis(f"basis has {basic.size} basic variables for {m} rows")
+            self.basic_idx = basic.astype(np.int64)
         self.x = np.zeros(self.N)
         self.dse = np.ones(m)
         self.devex = np.ones(self.N)
@@ -129,8 +166,76 @@ class Simplex:
         self.events: list[dict] = []
         self.names = list(lp.col_names) + list(lp.row_names)
         self.rng = np.random.default_rng(20261201)
-        self.factor: Factor | None = None
-        self.timings = {"factorize": 0.0}
+
+    @staticmethod
+    def reuse_applies(lp: LinearProgram, basis: Basis, state: EngineState | None, options: SolveOptions) -> bool:
+        """True when ``state`` fits: the model only gained rows (costs and bounds
+        may differ), the basic set is the old one plus the new rows' logicals,
+        and the cached factorization is still young."""
+        if state is None or not options.scale:
+            return False
+        n, m = lp.n, lp.m
+        A, old = lp.A, state.A
+        m0 = old.shape[0]
+        if old.shape[1] != n or m < m0 or getattr(state.factor, "depth", 0) >= MAX_REUSE_DEPTH:
+            return False
+        if state.factor.updates >= 0.75 * _refactor_interval(state.factor, options):
+            return False  # too close to its next refactorization to be worth wrapping
+        status = np.concatenate([basis.col_status, basis.row_status])
+        basic_now = np.flatnonzero(status == BASIC)
+        expected = np.sort(np.concatenate([state.basic_idx, n + np.arange(m0, m)]))
+        if basic_now.size != m or not np.array_equal(expected, basic_now):
+            return False
+        # the first m0 rows of A must be exactly the old matrix (indices are sorted)
+        top = A.indices < m0
+        counted = np.concatenate([[0], np.cumsum(top)])
+        old_counts = counted[A.indptr[1:]] - counted[A.indptr[:-1]]
+        return bool(
+            np.array_equal(old_counts, np.diff(old.indptr))
+            and np.array_equal(A.indices[top], old.indices)
+            and np.array_equal(A.data[top], old.data)
+        )
+
+    def _reuse(self, state: EngineState) -> bool:
+        """Adopt a previous solve's scaling and factorization (see reuse_applies)."""
+        if not self.reuse_applies(self.lp, self._basis_in, state, self.opt):
+            return False
+        lp, n, m = self.lp, self.n, self.m
+        A = lp.A
+        m0 = state.A.shape[0]
+        top = A.indices < m0
+        basic_idx = np.concatenate([state.basic_idx, n + np.arange(m0, m)]).astype(np.int64)
+        # scale the appended rows with the kept column scales (geometric mean)
+        S = state.scaling.col
+        R_new = np.ones(m - m0)
+        if m > m0:
+            cols = np.repeat(np.arange(n), np.diff(A.indptr))[~top]
+            rows = A.indices[~top] - m0
+            logs = np.log2(np.abs(A.data[~top] * S[cols]) + 1e-300)
+            rmax = np.full(m - m0, -np.inf)
+            rmin = np.full(m - m0, np.inf)
+            np.maximum.at(rmax, rows, logs)
+            np.minimum.at(rmin, rows, logs)
+            has = np.isfinite(rmax)
+            R_new[has] = np.exp2(np.round(-0.5 * (rmax[has] + rmin[has])))
+            new_block = sp.csr_matrix(
+                (A.data[~top] * S[cols] * R_new[rows], (rows, cols)), shape=(m - m0, n)
+            )
+            self.A = sp.vstack([state.A_scaled, new_block], format="csc")
+            # the border: new rows over the old basic columns, in basis order
+            struct = np.flatnonzero(state.basic_idx < n)
+            pick = sp.csc_matrix(
+                (np.ones(struct.size), (state.basic_idx[struct], struct)), shape=(n, m0)
+            )
+            C = new_block @ pick
+        else:
+            self.A = state.A_scaled
+            C = sp.csr_matrix((0, m0))
+        self.sc = Scaling(np.concatenate([state.scaling.row, R_new]), S)
+        self.basic_idx = basic_idx
+        self.factor = BorderedFactor(state.factor, C)
+        self._adapt_refactor_interval()
+        return True
 
     # ----------------------------------------------------------- linear algebra
     def column(self, j: int) -> np.ndarray:
@@ -155,15 +260,14 @@ class Simplex:
         bcols = self.basic_idx
         B = self._basis_matrix(bcols, bcols < self.n)
         self.factor = Factor(B)
-        took = time.perf_counter() - t
-        self.timings["factorize"] += took
-        # Balance refactorization cost against the growing eta file: about
-        # sqrt(2 * t_factor / t_eta) updates, t_eta ~ 15 us per eta per solve
-        # (measured on the supply-chain benchmark); never above the option.
-        self.refactor_every = int(min(self.opt.refactor_every, max(16, np.sqrt(2.0 * took / 15e-6))))
+        self.timings["factorize"] += time.perf_counter() - t
+        self._adapt_refactor_interval()
         self.events.append({"event": "refactor", "iteration": self.iteration, "reason": reason})
         self.compute_primal()
         self.compute_dual()
+
+    def _adapt_refactor_interval(self) -> None:
+        self.refactor_every = _refactor_interval(self.factor, self.opt)
 
     def _basis_matrix(self, bcols: np.ndarray, struct: np.ndarray) -> sp.csc_matrix:
         m = self.m
@@ -656,7 +760,15 @@ class Simplex:
     def run(self) -> SimplexOutcome:
         status = "optimal"
         try:
-            self.refactor("initial")
+            if self.reused:
+                try:
+                    self.compute_primal()
+                    self.compute_dual()
+                    self.events.append({"event": "reuse", "iteration": 0, "reason": "cached_factorization"})
+                except NumericalTrouble:
+                    self.refactor("reuse_inaccurate")
+            else:
+                self.refactor("initial")
             for _round in range(12):
                 pf = self.primal_feasible()
                 df = self.dual_feasible()
@@ -707,6 +819,7 @@ class Simplex:
             log_dropped=self.log_dropped,
             events=self.events,
             timings=self.timings,
+            state=EngineState(self.lp.A, self.sc, self.A, self.basic_idx.copy(), self.factor),
         )
         if status == "infeasible":
             out.farkas = self.farkas_rho * R
