@@ -1,0 +1,75 @@
+"""Reusing the previous solve's factorization across a chain of changes.
+
+Reference: a cold HiGHS solve (via highspy) of every changed model.
+"""
+
+from __future__ import annotations
+
+import zlib
+
+import numpy as np
+import pytest
+
+from service.lp import SolveOptions, remap, reoptimize, solve
+from service.lp.mps import read_mps
+from service.lp.simplex import Simplex
+from tests.lp.changes import changed_costs, one_cut, profitable_column, tighter_bound_and_moved_rhs
+from tests.lp.netlib import netlib_problems
+
+PROBLEMS = netlib_problems()
+CHAIN = [one_cut, one_cut, changed_costs, one_cut, tighter_bound_and_moved_rhs]
+
+
+def _reused(res) -> bool:
+    return any(e.get("event") == "reuse" for e in res.pivot_log)
+
+
+@pytest.mark.parametrize("problem", PROBLEMS, ids=[p.name for p in PROBLEMS])
+def test_chain_of_changes_with_reused_factorization(problem):
+    lp = read_mps(problem.path)
+    cold = solve(lp, SolveOptions(engine="builtin"))
+    # re-solving from the optimal basis takes no pivot and leaves a fresh factorization
+    res = reoptimize(lp, cold.basis, SolveOptions())
+    assert res.pivots == 0
+    rng = np.random.default_rng(zlib.crc32(problem.name.encode()))
+    current = lp
+    reused = []
+    for change in CHAIN:
+        changed = change(current, res, rng)
+        basis, _ = remap(res.basis, current.col_names, current.row_names, changed)
+        out = reoptimize(changed, basis, SolveOptions(), state=res.state)
+        ref = solve(changed)  # reference: cold HiGHS
+        assert out.fallback is None
+        assert out.status == ref.status
+        assert out.check["passed"]
+        reused.append(_reused(out))
+        if out.status != "optimal":
+            break
+        assert abs(out.objective - ref.objective) <= 1e-6 * max(1.0, abs(ref.objective))
+        current, res = changed, out
+    assert reused[0]  # a fresh factorization is always reused for an added row
+
+
+def test_reuse_is_refused_when_the_matrix_changed():
+    problem = next(p for p in PROBLEMS if p.name == "afiro")
+    lp = read_mps(problem.path)
+    res = solve(lp, SolveOptions(engine="builtin"))
+    changed = lp.copy()
+    changed.A = changed.A.copy()
+    changed.A.data[0] *= 1.5  # a coefficient moved: the old LU no longer describes B
+    assert not Simplex.reuse_applies(changed, res.basis, res.state, SolveOptions())
+    out = reoptimize(changed, res.basis, SolveOptions(), state=res.state)
+    assert not _reused(out)
+    ref = solve(changed)
+    assert out.status == ref.status
+    if ref.status == "optimal":
+        assert abs(out.objective - ref.objective) <= 1e-6 * max(1.0, abs(ref.objective))
+
+
+def test_reuse_is_refused_when_columns_were_added():
+    problem = next(p for p in PROBLEMS if p.name == "sc50a")
+    lp = read_mps(problem.path)
+    res = solve(lp, SolveOptions(engine="builtin"))
+    changed = profitable_column(lp, res, np.random.default_rng(1))
+    basis, _ = remap(res.basis, lp.col_names, lp.row_names, changed)
+    assert not Simplex.reuse_applies(changed, basis, res.state, SolveOptions())
