@@ -22,7 +22,9 @@ logconfig_dict = {
     "version": 1,
     "disable_existing_loggers": False,
     "formatters": {"json": {"()": "service.logs.JsonFormatter"}},
-    "handlers": {"stderr": {"class": "logging.StreamHandler", "formatter": "json", "stream": "ext://sys.stderr"}},
+    "handlers": {
+        "stderr": {"class": "logging.StreamHandler", "formatter": "json", "stream": "ext://sys.stderr"}
+    },
     "root": {"level": "INFO", "handlers": ["stderr"]},
     "loggers": {
         "gunicorn.error": {"handlers": ["stderr"], "level": "INFO", "propagate": False},

@@ -44,7 +44,9 @@ def _env_config() -> dict[str, Any]:
         "CACHE_SIZE": int(env.get("HOTBASIS_CACHE_SIZE", "16")),
         "COLD_ENGINE": env.get("HOTBASIS_COLD_ENGINE", "highs"),
         "LOG_LEVEL": env.get("HOTBASIS_LOG_LEVEL", "INFO"),
-        "OPENAPI_PATH": env.get("HOTBASIS_OPENAPI", str(Path(__file__).resolve().parent.parent / "openapi.yaml")),
+        "OPENAPI_PATH": env.get(
+            "HOTBASIS_OPENAPI", str(Path(__file__).resolve().parent.parent / "openapi.yaml")
+        ),
     }
 
 
@@ -64,8 +66,9 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     if not keys:
         logging.getLogger("hotbasis").warning("no API keys configured: every /v1 request will be refused")
     store = Store.from_url(app.config["REDIS_URL"], keep_versions=app.config["KEEP_VERSIONS"])
-    service = ModelService(store, VersionCache(app.config["CACHE_SIZE"]),
-                           SolveOptions(engine=app.config["COLD_ENGINE"]))
+    service = ModelService(
+        store, VersionCache(app.config["CACHE_SIZE"]), SolveOptions(engine=app.config["COLD_ENGINE"])
+    )
     app.extensions["hotbasis"] = Services(service=service, keyring=KeyRing(keys))
     register_error_handlers(app)
     register_blueprints(app)

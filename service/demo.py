@@ -58,16 +58,26 @@ def build_model() -> dict[str, Any]:
         constraints[f"throughput[{d}]"] = {"terms": dict(inflow), "upper": limit}
     for c, demand in CUSTOMERS.items():
         constraints[f"demand[{c}]"] = {"terms": {f"deliver[{d}->{c}]": 1.0 for d in DCS}, "lower": demand}
-    return {"name": "Bramble & Oat weekly plan", "sense": "min", "variables": variables, "constraints": constraints}
+    return {
+        "name": "Bramble & Oat weekly plan",
+        "sense": "min",
+        "variables": variables,
+        "constraints": constraints,
+    }
 
 
 # the two changes of the demo
-BRIDGE_CLOSURE = {"constraints": {"bridge_closure[hilltop->south_dc]": {
-    "terms": {"truck[hilltop->south_dc]": 1.0}, "upper": 250}}}
+BRIDGE_CLOSURE = {
+    "constraints": {
+        "bridge_closure[hilltop->south_dc]": {"terms": {"truck[hilltop->south_dc]": 1.0}, "upper": 250}
+    }
+}
 COPACKER = {
     "variables": {"copack[east->south_dc]": {"cost": 3.95, "upper": 300}},
-    "constraints": {"balance[south_dc]": {"terms": {"copack[east->south_dc]": 1.0}},
-                    "throughput[south_dc]": {"terms": {"copack[east->south_dc]": 1.0}}},
+    "constraints": {
+        "balance[south_dc]": {"terms": {"copack[east->south_dc]": 1.0}},
+        "throughput[south_dc]": {"terms": {"copack[east->south_dc]": 1.0}},
+    },
 }
 
 
@@ -78,8 +88,9 @@ class Api:
         self.base = base_url.rstrip("/")
         self.key = key
 
-    def call(self, method: str, path: str, body: Any = None, content_type: str = "application/json") -> tuple[
-            dict, dict]:
+    def call(
+        self, method: str, path: str, body: Any = None, content_type: str = "application/json"
+    ) -> tuple[dict, dict]:
         data = None if body is None else json.dumps(body).encode()
         req = urllib.request.Request(self.base + path, data=data, method=method)
         req.add_header("Authorization", f"Bearer {self.key}")
@@ -99,7 +110,9 @@ def _num(x: float | None, width: int = 10, digits: int = 2) -> str:
 
 
 def print_plan(result: dict) -> None:
-    rows = [(n, v["value"]) for n, v in result["solution"]["variables"].items() if abs(v["value"] or 0) > 1e-9]
+    rows = [
+        (n, v["value"]) for n, v in result["solution"]["variables"].items() if abs(v["value"] or 0) > 1e-9
+    ]
     print(f"  {'activity':<34}{'cases':>10}")
     for name, value in rows:
         print(f"  {name:<34}{_num(value, 10, 1)}")
@@ -107,8 +120,10 @@ def print_plan(result: dict) -> None:
 
 def print_solve(result: dict) -> None:
     s = result["solve"]
-    print(f"  status {result['status']}, weekly cost {_num(result['objective'], 0)}; method {s['method']}, "
-          f"warm {str(s['warm']).lower()}, {s['pivots']} pivot(s), {s['time_ms']:.1f} ms in the engine")
+    print(
+        f"  status {result['status']}, weekly cost {_num(result['objective'], 0)}; method {s['method']}, "
+        f"warm {str(s['warm']).lower()}, {s['pivots']} pivot(s), {s['time_ms']:.1f} ms in the engine"
+    )
     if s.get("fallback"):
         print(f"  note: the warm start fell back to a cold solve ({s['fallback'].get('reason')})")
 
@@ -118,10 +133,14 @@ def print_pivot_log(result: dict) -> None:
     if not log:
         print("  (no pivots: the stored basis was still optimal)")
         return
-    print(f"  {'#':>3} {'algorithm':<9} {'leaving':<34} {'entering':<28} {'pivot':>8} {'step':>9} {'objective':>11}")
+    print(
+        f"  {'#':>3} {'algorithm':<9} {'leaving':<34} {'entering':<28} {'pivot':>8} {'step':>9} {'objective':>11}"
+    )
     for e in log:
-        print(f"  {e['iteration']:>3} {e['algorithm']:<9} {str(e['leaving']):<34} {str(e['entering']):<28} "
-              f"{_num(e['pivot'], 8, 3)} {_num(e['step'], 9, 2)} {_num(e['objective'], 11, 2)}")
+        print(
+            f"  {e['iteration']:>3} {e['algorithm']:<9} {str(e['leaving']):<34} {str(e['entering']):<28} "
+            f"{_num(e['pivot'], 8, 3)} {_num(e['step'], 9, 2)} {_num(e['objective'], 11, 2)}"
+        )
 
 
 def print_changes(result: dict) -> None:
@@ -180,8 +199,10 @@ def run(base_url: str, key: str) -> dict[str, Any]:
     versions, _ = api.call("GET", model + "/versions")
     print("5. History")
     for v in versions["versions"]:
-        print(f"  version {v['version']}: {v['method']:<12} warm {str(v['warm']).lower():<5} "
-              f"{v['pivots']:>3} pivot(s), weekly cost {_num(v['objective'], 0)}")
+        print(
+            f"  version {v['version']}: {v['method']:<12} warm {str(v['warm']).lower():<5} "
+            f"{v['pivots']:>3} pivot(s), weekly cost {_num(v['objective'], 0)}"
+        )
     print(line)
     print("Plans are decision support: review them before they drive orders or production.")
     return {"created": created, "cut": cut, "added": added}

@@ -239,11 +239,23 @@ def from_document(doc: Any) -> LinearProgram:
                 cols.append(j)
                 vals.append(value)
     errs.raise_if_any()
-    A = sp.csc_matrix((np.asarray(vals, dtype=float), (np.asarray(rows, dtype=np.int64),
-                       np.asarray(cols, dtype=np.int64))), shape=(m, n))
-    return LinearProgram(A=A, c=c, col_lower=col_lower, col_upper=col_upper, row_lower=row_lower,
-                         row_upper=row_upper, sense=sense, offset=offset, col_names=col_names,
-                         row_names=row_names, name=name)
+    A = sp.csc_matrix(
+        (np.asarray(vals, dtype=float), (np.asarray(rows, dtype=np.int64), np.asarray(cols, dtype=np.int64))),
+        shape=(m, n),
+    )
+    return LinearProgram(
+        A=A,
+        c=c,
+        col_lower=col_lower,
+        col_upper=col_upper,
+        row_lower=row_lower,
+        row_upper=row_upper,
+        sense=sense,
+        offset=offset,
+        col_names=col_names,
+        row_names=row_names,
+        name=name,
+    )
 
 
 def _variable_fields(var: dict, base: tuple[str, ...], errs: _Errors) -> tuple[float, float, float]:
@@ -277,7 +289,9 @@ def to_document(lp: LinearProgram) -> dict[str, Any]:
     """The JSON document of a LinearProgram (bounds at infinity become null)."""
     variables = {
         name: {"cost": cost, "lower": _json_bound(lo), "upper": _json_bound(up)}
-        for name, cost, lo, up in zip(lp.col_names, lp.c.tolist(), lp.col_lower.tolist(), lp.col_upper.tolist())
+        for name, cost, lo, up in zip(
+            lp.col_names, lp.c.tolist(), lp.col_lower.tolist(), lp.col_upper.tolist()
+        )
     }
     csr = lp.A.tocsr()
     csr.sort_indices()
@@ -286,7 +300,9 @@ def to_document(lp: LinearProgram) -> dict[str, Any]:
     constraints = {}
     for i, (name, lo, up) in enumerate(zip(lp.row_names, lp.row_lower.tolist(), lp.row_upper.tolist())):
         start, stop = indptr[i], indptr[i + 1]
-        terms = {col_names[j]: data[k] for k, j in zip(range(start, stop), indices[start:stop].tolist()) if data[k]}
+        terms = {
+            col_names[j]: data[k] for k, j in zip(range(start, stop), indices[start:stop].tolist()) if data[k]
+        }
         constraints[name] = {"terms": terms, "lower": _json_bound(lo), "upper": _json_bound(up)}
     return {
         "name": lp.name,
@@ -317,7 +333,10 @@ def lp_check(lp: LinearProgram) -> None:
         ("constraints", lp.row_names, lp.row_lower, lp.row_upper),
     ):
         for k in np.flatnonzero(lo > up):
-            errs.add(pointer(kind, names[k], "lower"), f"lower bound {_fmt(lo[k])} exceeds upper bound {_fmt(up[k])}")
+            errs.add(
+                pointer(kind, names[k], "lower"),
+                f"lower bound {_fmt(lo[k])} exceeds upper bound {_fmt(up[k])}",
+            )
     errs.raise_if_any()
 
 
@@ -406,18 +425,28 @@ class ChangeSet:
     col_source: np.ndarray | None = field(default=None, repr=False, compare=False)
     row_source: np.ndarray | None = field(default=None, repr=False, compare=False)
 
-    LISTS = ("rows_added", "rows_removed", "columns_added", "columns_removed", "row_bounds",
-             "column_bounds", "costs", "coefficients")
+    LISTS = (
+        "rows_added",
+        "rows_removed",
+        "columns_added",
+        "columns_removed",
+        "row_bounds",
+        "column_bounds",
+        "costs",
+        "coefficients",
+    )
 
     def empty(self) -> bool:
-        return not (any(getattr(self, k) for k in self.LISTS) or self.sense or self.objective_offset or self.name)
+        return not (
+            any(getattr(self, k) for k in self.LISTS) or self.sense or self.objective_offset or self.name
+        )
 
     def model_changed(self) -> bool:
         """True when the numbers changed (a new name alone needs no re-optimization)."""
         return any(getattr(self, k) for k in self.LISTS) or self.sense or self.objective_offset
 
     def kind(self) -> str:
-        """"dual", "primal", "both" or "none": which simplex the change calls for."""
+        """ "dual", "primal", "both" or "none": which simplex the change calls for."""
         dual = bool(self.rows_added or self.row_bounds or self.column_bounds or self.rows_removed)
         primal = bool(self.columns_added or self.costs or self.sense or self.columns_removed)
         if self.coefficients:
@@ -444,7 +473,11 @@ _MISSING = object()
 
 def _row_terms(csr: sp.csr_matrix, i: int, col_names: list[str]) -> dict[str, float]:
     start, stop = csr.indptr[i], csr.indptr[i + 1]
-    return {col_names[j]: float(v) for j, v in zip(csr.indices[start:stop].tolist(), csr.data[start:stop].tolist()) if v}
+    return {
+        col_names[j]: float(v)
+        for j, v in zip(csr.indices[start:stop].tolist(), csr.data[start:stop].tolist())
+        if v
+    }
 
 
 def apply_patch(lp: LinearProgram, patch: Any) -> tuple[LinearProgram, ChangeSet]:
@@ -504,7 +537,9 @@ def apply_patch(lp: LinearProgram, patch: Any) -> tuple[LinearProgram, ChangeSet
                     col_keep[j] = False
                 continue
             if not isinstance(vp, dict):
-                errs.add(pointer(*base), "a variable patch must be an object (or null to remove the variable)")
+                errs.add(
+                    pointer(*base), "a variable patch must be an object (or null to remove the variable)"
+                )
                 continue
             _unknown_keys(vp, VAR_KEYS, base, errs)
             if j is None:
@@ -596,14 +631,18 @@ def apply_patch(lp: LinearProgram, patch: Any) -> tuple[LinearProgram, ChangeSet
             start, stop = A.indptr[j], A.indptr[j + 1]
             for i, value in zip(A.indices[start:stop].tolist(), A.data[start:stop].tolist()):
                 if value and row_keep[i] and i not in rewritten:
-                    errs.add(pointer("variables", vname),
-                             f"cannot remove the variable: constraint {lp.row_names[i]!r} still uses it")
+                    errs.add(
+                        pointer("variables", vname),
+                        f"cannot remove the variable: constraint {lp.row_names[i]!r} still uses it",
+                    )
         for i, terms in rewritten.items():
             if row_keep[i]:
                 for vname in terms:
                     if vname not in final_col:
-                        errs.add(pointer("constraints", lp.row_names[i], "terms", vname),
-                                 "names a variable that is not in the model")
+                        errs.add(
+                            pointer("constraints", lp.row_names[i], "terms", vname),
+                            "names a variable that is not in the model",
+                        )
     errs.raise_if_any("The merge patch is not valid")
 
     changes.columns_removed = [lp.col_names[j] for j in removed_cols.tolist()]
@@ -673,8 +712,10 @@ def apply_patch(lp: LinearProgram, patch: Any) -> tuple[LinearProgram, ChangeSet
         name=name,
     )
     # hand the name index on when only appends happened: the next patch of this version needs it
-    for attr, index, kept, added in (("col_names", col_index, kept_cols, new_cols),
-                                     ("row_names", row_index, kept_rows, new_rows)):
+    for attr, index, kept, added in (
+        ("col_names", col_index, kept_cols, new_cols),
+        ("row_names", row_index, kept_rows, new_rows),
+    ):
         if kept.size == len(index):
             carried = dict(index)
             carried.update({item[0]: len(index) + k for k, item in enumerate(added)})
@@ -696,7 +737,9 @@ def name_index(lp: LinearProgram, attr: str) -> dict[str, int]:
 class _FinalColumns:
     """Name -> position in the patched model, without building a dict of every name."""
 
-    def __init__(self, index: dict[str, int], keep: np.ndarray, kept: np.ndarray, new: dict[str, int]) -> None:
+    def __init__(
+        self, index: dict[str, int], keep: np.ndarray, kept: np.ndarray, new: dict[str, int]
+    ) -> None:
         self.index, self.keep, self.new = index, keep, new
         self.n_kept = kept.size
         self.shift = None

@@ -88,7 +88,9 @@ class ModelService:
         return rec
 
     # ---------------------------------------------------------------- creating
-    def create(self, tenant: str, lp: LinearProgram, op_id: str | None = None, idem_key: str | None = None) -> Outcome:
+    def create(
+        self, tenant: str, lp: LinearProgram, op_id: str | None = None, idem_key: str | None = None
+    ) -> Outcome:
         """Cold-solve a new model and store it as version 1.
 
         With an idempotency key the id is derived from (tenant, key), so a
@@ -162,8 +164,13 @@ class ModelService:
             timings["solve"] = timings.get("solve", 0.0) + time.perf_counter() - t
 
             t = time.perf_counter()
-            rec = self._record(new_lp, res, res.basis if res.basis is not None else start_basis,
-                               changes=changes, moved_from=prior)
+            rec = self._record(
+                new_lp,
+                res,
+                res.basis if res.basis is not None else start_basis,
+                changes=changes,
+                moved_from=prior,
+            )
             try:
                 new_head = self.store.commit(model_id, head.version, rec, op_id=op_id)
             except VersionConflict:
@@ -210,7 +217,9 @@ class ModelService:
             res = engine.reoptimize(new_lp, start, self.options, change_summary=describe(changes))
         except Exception as exc:  # the engine failed outright: answer with a cold solve, and say so
             log.exception("warm re-optimization raised; solving cold")
-            res = self._cold(new_lp, "changed model", fallback={"reason": "engine_error", "detail": str(exc)[:300]})
+            res = self._cold(
+                new_lp, "changed model", fallback={"reason": "engine_error", "detail": str(exc)[:300]}
+            )
         return res, start
 
     def _record(
@@ -227,16 +236,26 @@ class ModelService:
         if moved_from is None:
             report = None
             moved_cols = moved_indices(sol.x, None)
-            moved_rows = np.union1d(moved_indices(sol.row_activity, None), moved_indices(sol.shadow_price, None))
+            moved_rows = np.union1d(
+                moved_indices(sol.row_activity, None), moved_indices(sol.shadow_price, None)
+            )
             moved_rows = moved_rows.astype(np.int32)
         else:
-            report, moved_cols, moved_rows = change_report(moved_from, lp, sol, objective, changes.summary(),
-                                                           changes.col_source, changes.row_source)
+            report, moved_cols, moved_rows = change_report(
+                moved_from, lp, sol, objective, changes.summary(), changes.col_source, changes.row_source
+            )
         result = result_record(res, lp, report)
-        change_kind = None if changes is None else {"kind": changes.kind(), **changes.counts(),
-                                                    "sense": changes.sense,
-                                                    "objective_offset": changes.objective_offset,
-                                                    "name": changes.name}
+        change_kind = (
+            None
+            if changes is None
+            else {
+                "kind": changes.kind(),
+                **changes.counts(),
+                "sense": changes.sense,
+                "objective_offset": changes.objective_offset,
+                "name": changes.name,
+            }
+        )
         return VersionRecord(
             version=0,  # numbered by the store at commit
             lp=lp,

@@ -55,8 +55,12 @@ def jsonable(value: Any) -> Any:
 def _name_check(check: dict[str, Any], lp: LinearProgram) -> dict[str, Any]:
     """The engine's check figures, with any row/column index turned into its name."""
     out = jsonable(check)
-    for key, names in (("worst_row", lp.row_names), ("worst_dual_row", lp.row_names),
-                       ("worst_column", lp.col_names), ("worst_dual_column", lp.col_names)):
+    for key, names in (
+        ("worst_row", lp.row_names),
+        ("worst_dual_row", lp.row_names),
+        ("worst_column", lp.col_names),
+        ("worst_dual_column", lp.col_names),
+    ):
         value = out.get(key)
         if isinstance(value, int) and 0 <= value < len(names):
             out[key] = names[value]
@@ -172,7 +176,9 @@ def solution_json(
     }
     constraints = {
         row_names[i]: {"activity": a, "shadow_price": y, "basis": s}
-        for i, a, y, s in zip(rows.tolist(), pick(sol.row_activity, rows), pick(sol.shadow_price, rows), row_status)
+        for i, a, y, s in zip(
+            rows.tolist(), pick(sol.row_activity, rows), pick(sol.shadow_price, rows), row_status
+        )
     }
     return {"variables": variables, "constraints": constraints}
 
@@ -213,8 +219,13 @@ def render_result(
 
 
 def change_report(
-    before: VersionRecord, after_lp: LinearProgram, after: Solution, after_objective: float | None,
-    model_changes: dict[str, Any], col_src: np.ndarray | None = None, row_src: np.ndarray | None = None,
+    before: VersionRecord,
+    after_lp: LinearProgram,
+    after: Solution,
+    after_objective: float | None,
+    model_changes: dict[str, Any],
+    col_src: np.ndarray | None = None,
+    row_src: np.ndarray | None = None,
 ) -> tuple[dict[str, Any], np.ndarray, np.ndarray]:
     """What moved between two versions, by name: objective, variable values, counts.
 
@@ -225,10 +236,14 @@ def change_report(
     old_lp, old = before.lp, before.solution
     if col_src is None:
         col_pos = {name: j for j, name in enumerate(old_lp.col_names)}
-        col_src = np.fromiter((col_pos.get(nm, -1) for nm in after_lp.col_names), dtype=np.int64, count=after_lp.n)
+        col_src = np.fromiter(
+            (col_pos.get(nm, -1) for nm in after_lp.col_names), dtype=np.int64, count=after_lp.n
+        )
     if row_src is None:
         row_pos = {name: i for i, name in enumerate(old_lp.row_names)}
-        row_src = np.fromiter((row_pos.get(nm, -1) for nm in after_lp.row_names), dtype=np.int64, count=after_lp.m)
+        row_src = np.fromiter(
+            (row_pos.get(nm, -1) for nm in after_lp.row_names), dtype=np.int64, count=after_lp.m
+        )
 
     def carried(old_values: np.ndarray | None, src: np.ndarray) -> np.ndarray | None:
         if old_values is None:
@@ -253,7 +268,7 @@ def change_report(
         for k in order.tolist():
             j = int(moved_cols[k])
             prior = None if old_x is None or np.isnan(old_x[j]) else float(old_x[j])
-            variables[after_lp.col_names[j]] = {"before": prior, "after": _clean(after.x[j:j + 1])[0]}
+            variables[after_lp.col_names[j]] = {"before": prior, "after": _clean(after.x[j : j + 1])[0]}
         if old.x is not None:  # removed variables that carried flow
             removed = np.ones(old_lp.n, dtype=bool)
             removed[col_src[col_src >= 0]] = False

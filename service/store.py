@@ -252,7 +252,9 @@ class Store:
 
     @classmethod
     def from_url(cls, url: str, **kwargs: Any) -> Store:
-        client = redis.Redis.from_url(url, socket_timeout=10, socket_connect_timeout=5, health_check_interval=30)
+        client = redis.Redis.from_url(
+            url, socket_timeout=10, socket_connect_timeout=5, health_check_interval=30
+        )
         return cls(client, **kwargs)
 
     # keys
@@ -402,7 +404,12 @@ class Store:
                 pipe.hset(self._ver(model_id, new), mapping=encode_record(record))
                 pipe.hset(
                     head_key,
-                    mapping={"version": new, "first_version": first, "updated_at": repr(now), "name": record.lp.name},
+                    mapping={
+                        "version": new,
+                        "first_version": first,
+                        "updated_at": repr(now),
+                        "name": record.lp.name,
+                    },
                 )
                 for old in range(head.first_version, first):
                     pipe.delete(self._ver(model_id, old))
@@ -459,7 +466,13 @@ class Store:
         raise StoreError("could not reserve the idempotency key")
 
     def idem_finish(
-        self, tenant: str, key: str, fingerprint: str, status: int, headers: dict[str, str], body: bytes,
+        self,
+        tenant: str,
+        key: str,
+        fingerprint: str,
+        status: int,
+        headers: dict[str, str],
+        body: bytes,
         ttl: int = IDEMPOTENCY_TTL,
     ) -> None:
         rec_key, body_key = self._idem(tenant, op_digest(tenant, key))

@@ -29,8 +29,23 @@ def start_redis(workdir: Path, appendonly: bool = False) -> tuple[subprocess.Pop
     workdir.mkdir(parents=True, exist_ok=True)
     for _ in range(5):
         port = free_port()
-        args = [binary, "--port", str(port), "--bind", "127.0.0.1", "--dir", str(workdir), "--save", "",
-                "--appendonly", "yes" if appendonly else "no", "--daemonize", "no", "--loglevel", "warning"]
+        args = [
+            binary,
+            "--port",
+            str(port),
+            "--bind",
+            "127.0.0.1",
+            "--dir",
+            str(workdir),
+            "--save",
+            "",
+            "--appendonly",
+            "yes" if appendonly else "no",
+            "--daemonize",
+            "no",
+            "--loglevel",
+            "warning",
+        ]
         proc = subprocess.Popen(args, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
         client = redis.Redis(host="127.0.0.1", port=port)
         deadline = time.monotonic() + 10
@@ -124,8 +139,13 @@ def reference_objective(doc: dict) -> float | None:
         if con.get("lower") is not None:
             a_ub.append(-row)
             b_ub.append(-con["lower"])
-    res = linprog(c, A_ub=np.array(a_ub) if a_ub else None, b_ub=np.array(b_ub) if b_ub else None,
-                  bounds=bounds, method="highs")
+    res = linprog(
+        c,
+        A_ub=np.array(a_ub) if a_ub else None,
+        b_ub=np.array(b_ub) if b_ub else None,
+        bounds=bounds,
+        method="highs",
+    )
     if res.status != 0:
         return None
     return sign * res.fun + (doc.get("objective_offset") or 0.0)

@@ -146,7 +146,10 @@ def test_apply_patch_adds_a_constraint_and_classifies_it_dual():
 
 def test_apply_patch_adds_a_variable_and_classifies_it_primal():
     lp = from_document(DEPOT)
-    patch = {"variables": {"trikes": {"cost": 45}}, "constraints": {"assembly_hours": {"terms": {"trikes": 2.5}}}}
+    patch = {
+        "variables": {"trikes": {"cost": 45}},
+        "constraints": {"assembly_hours": {"terms": {"trikes": 2.5}}},
+    }
     new, changes = apply_patch(lp, patch)
     assert new.col_names == ["bikes", "carts", "spare", "trikes"]
     np.testing.assert_array_equal(new.A.toarray()[0], [2, 3, 0, 2.5])

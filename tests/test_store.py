@@ -30,7 +30,10 @@ DOC = {
     "sense": "max",
     "objective_offset": 2.5,
     "variables": {"tiles": {"cost": 3, "upper": 10}, "bricks": {"cost": 2, "lower": None}, "glaze/µ": {}},
-    "constraints": {"kiln": {"terms": {"tiles": 1, "bricks": 1}, "upper": 12}, "clay": {"terms": {"bricks": 2}}},
+    "constraints": {
+        "kiln": {"terms": {"tiles": 1, "bricks": 1}, "upper": 12},
+        "clay": {"terms": {"bricks": 2}},
+    },
 }
 
 
@@ -132,7 +135,9 @@ def test_concurrent_commits_never_overwrite_each_other(store):
             for _ in range(200):
                 head = store.head(mid)
                 current = store.load(mid, head.version)
-                new_lp, _ = apply_patch(current.lp, {"constraints": {f"limit_{k}": {"terms": {"tiles": 1}, "upper": k}}})
+                new_lp, _ = apply_patch(
+                    current.lp, {"constraints": {f"limit_{k}": {"terms": {"tiles": 1}, "upper": k}}}
+                )
                 try:
                     store.commit(mid, head.version, record(new_lp))
                     return

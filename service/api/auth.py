@@ -66,12 +66,21 @@ def authenticate(ring: KeyRing) -> str:
     header = request.headers.get("Authorization", "")
     scheme, _, token = header.partition(" ")
     if not header or scheme.lower() != "bearer" or not token.strip():
-        raise ApiError(401, "unauthorized", "Authentication required",
-                       "send the API key as Authorization: Bearer <key>",
-                       headers={"WWW-Authenticate": 'Bearer realm="hotbasis"'})
+        raise ApiError(
+            401,
+            "unauthorized",
+            "Authentication required",
+            "send the API key as Authorization: Bearer <key>",
+            headers={"WWW-Authenticate": 'Bearer realm="hotbasis"'},
+        )
     tenant = ring.tenant_for(token.strip())
     if tenant is None:
-        raise ApiError(401, "unauthorized", "Authentication required", "the API key is not known",
-                       headers={"WWW-Authenticate": 'Bearer realm="hotbasis", error="invalid_token"'})
+        raise ApiError(
+            401,
+            "unauthorized",
+            "Authentication required",
+            "the API key is not known",
+            headers={"WWW-Authenticate": 'Bearer realm="hotbasis", error="invalid_token"'},
+        )
     g.tenant = tenant
     return tenant

@@ -98,7 +98,9 @@ def register_error_handlers(app: Flask) -> None:
             return problem_response(exc)
         if isinstance(exc, DocumentError):
             return problem_response(
-                ApiError(400, "invalid-document", exc.title, str(exc), errors=[e.as_dict() for e in exc.errors])
+                ApiError(
+                    400, "invalid-document", exc.title, str(exc), errors=[e.as_dict() for e in exc.errors]
+                )
             )
         if isinstance(exc, ValidationError):
             return problem_response(query_error(exc))
@@ -107,12 +109,23 @@ def register_error_handlers(app: Flask) -> None:
         if isinstance(exc, (redis.ConnectionError, redis.TimeoutError, redis.BusyLoadingError)):
             log.warning("storage unavailable: %s", exc)
             return problem_response(
-                ApiError(503, "storage-unavailable", "Storage unavailable",
-                         "the model store cannot be reached; retry shortly", headers={"Retry-After": "2"})
+                ApiError(
+                    503,
+                    "storage-unavailable",
+                    "Storage unavailable",
+                    "the model store cannot be reached; retry shortly",
+                    headers={"Retry-After": "2"},
+                )
             )
         log.exception("unhandled error")
-        return problem_response(ApiError(500, "internal-error", "Internal error",
-                                         "the service failed on this request; it is logged under the request id"))
+        return problem_response(
+            ApiError(
+                500,
+                "internal-error",
+                "Internal error",
+                "the service failed on this request; it is logged under the request id",
+            )
+        )
 
 
 def query_error(exc: ValidationError) -> ApiError:
@@ -122,5 +135,6 @@ def query_error(exc: ValidationError) -> ApiError:
     for name, msgs in messages.items():
         for msg in msgs if isinstance(msgs, list) else [msgs]:
             errors.append({"parameter": str(name), "detail": str(msg)})
-    return ApiError(400, "invalid-parameter", "Invalid query parameter", "a query parameter is not valid",
-                    errors=errors)
+    return ApiError(
+        400, "invalid-parameter", "Invalid query parameter", "a query parameter is not valid", errors=errors
+    )

@@ -22,8 +22,13 @@ def readyz() -> Response:
     try:
         current_app.extensions["hotbasis"].service.store.ping()
     except Exception as exc:  # any failure to reach Redis means "not ready"
-        raise ApiError(503, "not-ready", "Not ready", f"the model store does not answer: {type(exc).__name__}",
-                       headers={"Retry-After": "2"}) from None
+        raise ApiError(
+            503,
+            "not-ready",
+            "Not ready",
+            f"the model store does not answer: {type(exc).__name__}",
+            headers={"Retry-After": "2"},
+        ) from None
     return Response(orjson.dumps({"status": "ready"}), mimetype="application/json")
 
 

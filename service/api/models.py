@@ -68,9 +68,13 @@ def _parse_json(data: bytes) -> Any:
     try:
         value = orjson.loads(data)
     except orjson.JSONDecodeError as exc:
-        raise ApiError(400, "invalid-json", "The body is not valid JSON",
-                       f"{exc.msg} at line {exc.lineno} column {exc.colno} (NaN and Infinity are not JSON)",
-                       errors=[{"pointer": "", "detail": exc.msg}]) from None
+        raise ApiError(
+            400,
+            "invalid-json",
+            "The body is not valid JSON",
+            f"{exc.msg} at line {exc.lineno} column {exc.colno} (NaN and Infinity are not JSON)",
+            errors=[{"pointer": "", "detail": exc.msg}],
+        ) from None
     _timed("parse", t)
     return value
 
@@ -82,9 +86,13 @@ def _body() -> bytes:
 def _require_media(allowed: tuple[str, ...], header: str) -> str:
     mimetype = request.mimetype
     if mimetype not in allowed:
-        raise ApiError(415, "unsupported-media-type", "Unsupported media type",
-                       f"send the body as {' or '.join(allowed)} (got {mimetype or 'no Content-Type'})",
-                       headers={header: ", ".join(allowed)})
+        raise ApiError(
+            415,
+            "unsupported-media-type",
+            "Unsupported media type",
+            f"send the body as {' or '.join(allowed)} (got {mimetype or 'no Content-Type'})",
+            headers={header: ", ".join(allowed)},
+        )
     return mimetype
 
 
@@ -98,9 +106,14 @@ def _if_match() -> list[str] | None:
 
 def _precondition_failed(exc: PreconditionFailed) -> ApiError:
     head = exc.current
-    return ApiError(412, "stale-version", "Precondition failed",
-                    f"If-Match does not name the current version; the model is at version {head.version}",
-                    headers={"ETag": head.etag}, current_version=head.version)
+    return ApiError(
+        412,
+        "stale-version",
+        "Precondition failed",
+        f"If-Match does not name the current version; the model is at version {head.version}",
+        headers={"ETag": head.etag},
+        current_version=head.version,
+    )
 
 
 def _result_headers(outcome: Outcome) -> dict[str, str]:
@@ -111,8 +124,9 @@ def _result_headers(outcome: Outcome) -> dict[str, str]:
 
 
 def _render(outcome: Outcome, query: dict[str, Any]) -> dict[str, Any]:
-    return render_result(outcome.head.model_id, outcome.record, query["sections"], query["solution"],
-                         query["changes_limit"])
+    return render_result(
+        outcome.head.model_id, outcome.record, query["sections"], query["solution"], query["changes_limit"]
+    )
 
 
 # ---------------------------------------------------------------- idempotency
@@ -128,9 +142,13 @@ def _with_idempotency(handler: Callable[[str | None, str | None], Response]) -> 
     try:
         key = IdempotencyKey().load({"key": raw_key})
     except ValidationError:
-        raise ApiError(400, "invalid-header", "Invalid Idempotency-Key",
-                       "an Idempotency-Key is 1 to 255 visible ASCII characters",
-                       errors=[{"header": "Idempotency-Key", "detail": "1 to 255 visible ASCII characters"}]) from None
+        raise ApiError(
+            400,
+            "invalid-header",
+            "Invalid Idempotency-Key",
+            "an Idempotency-Key is 1 to 255 visible ASCII characters",
+            errors=[{"header": "Idempotency-Key", "detail": "1 to 255 visible ASCII characters"}],
+        ) from None
     store = _service().store
     digest = hashlib.sha256()
     for part in (request.method, request.full_path, request.mimetype, request.headers.get("If-Match", "")):
@@ -140,12 +158,20 @@ def _with_idempotency(handler: Callable[[str | None, str | None], Response]) -> 
     held = store.idem_begin(g.tenant, key, fingerprint)
     if held is not None:
         if held.get("fingerprint") != fingerprint:
-            raise ApiError(422, "idempotency-key-reused", "Idempotency-Key reused",
-                           "this Idempotency-Key was used for a different request within the last 24 hours")
+            raise ApiError(
+                422,
+                "idempotency-key-reused",
+                "Idempotency-Key reused",
+                "this Idempotency-Key was used for a different request within the last 24 hours",
+            )
         if held.get("state") != "done":
-            raise ApiError(409, "request-in-progress", "Request in progress",
-                           "a request with this Idempotency-Key is still being processed",
-                           headers={"Retry-After": "1"})
+            raise ApiError(
+                409,
+                "request-in-progress",
+                "Request in progress",
+                "a request with this Idempotency-Key is still being processed",
+                headers={"Retry-After": "1"},
+            )
         resp = Response(held["body"], status=held["status"], mimetype=JSON)
         for name, value in held.get("headers", {}).items():
             resp.headers[name] = value
@@ -200,15 +226,26 @@ def _read_mps(data: bytes):
         try:
             data = inflater.decompress(data, limit + 1)
         except zlib.error as exc:
-            raise ApiError(400, "invalid-mps", "The MPS file cannot be read", f"gzip data is corrupt: {exc}") from None
+            raise ApiError(
+                400, "invalid-mps", "The MPS file cannot be read", f"gzip data is corrupt: {exc}"
+            ) from None
         if len(data) > limit:
-            raise ApiError(413, "body-too-large", "Request body too large",
-                           f"the MPS file inflates to more than {limit} bytes")
+            raise ApiError(
+                413,
+                "body-too-large",
+                "Request body too large",
+                f"the MPS file inflates to more than {limit} bytes",
+            )
     try:
         lp = read_mps(bytes(data))
     except MpsError as exc:
-        raise ApiError(400, "invalid-mps", "The MPS file cannot be read", str(exc),
-                       errors=[{"pointer": "", "detail": str(exc)}]) from None
+        raise ApiError(
+            400,
+            "invalid-mps",
+            "The MPS file cannot be read",
+            str(exc),
+            errors=[{"pointer": "", "detail": str(exc)}],
+        ) from None
     lp_check(lp)
     return lp
 
@@ -229,9 +266,14 @@ def list_models() -> Response:
         for h in heads
     ]
     next_offset = query["offset"] + query["limit"]
-    nxt = url_for("models.list_models", offset=next_offset, limit=query["limit"]) if next_offset < total else None
-    return _json_response({"models": items, "total": total, "offset": query["offset"], "limit": query["limit"],
-                           "next": nxt})
+    nxt = (
+        url_for("models.list_models", offset=next_offset, limit=query["limit"])
+        if next_offset < total
+        else None
+    )
+    return _json_response(
+        {"models": items, "total": total, "offset": query["offset"], "limit": query["limit"], "next": nxt}
+    )
 
 
 @bp.get("/models/<model_id>")
@@ -292,17 +334,25 @@ def _patch(model_id: str, section: str | None) -> Response:
         except DocumentError as exc:
             if section is not None:  # point into the body that was sent: the map alone
                 prefix = "/" + section
-                exc.errors = [FieldError(e.pointer[len(prefix):] if e.pointer.startswith(prefix) else e.pointer,
-                                         e.detail) for e in exc.errors]
+                exc.errors = [
+                    FieldError(
+                        e.pointer[len(prefix) :] if e.pointer.startswith(prefix) else e.pointer, e.detail
+                    )
+                    for e in exc.errors
+                ]
             raise
         except PreconditionFailed as exc:
             raise _precondition_failed(exc) from None
         except ModelNotFound:
             raise _not_found(model_id) from None
         except TooMuchContention:
-            raise ApiError(503, "contention", "Too many concurrent changes",
-                           "the model changed too often while this change was being applied; retry",
-                           headers={"Retry-After": "1"}) from None
+            raise ApiError(
+                503,
+                "contention",
+                "Too many concurrent changes",
+                "the model changed too often while this change was being applied; retry",
+                headers={"Retry-After": "1"},
+            ) from None
         _note(outcome)
         return _json_response(_render(outcome, query), 200, _result_headers(outcome))
 
@@ -328,8 +378,9 @@ def list_versions(model_id: str) -> Response:
     head = _head(model_id)
     summaries = _service().store.summaries(head)
     summaries.reverse()  # newest first
-    return _json_response({"id": head.model_id, "version": head.version, "versions": summaries},
-                          headers={"ETag": head.etag})
+    return _json_response(
+        {"id": head.model_id, "version": head.version, "versions": summaries}, headers={"ETag": head.etag}
+    )
 
 
 @bp.get("/models/<model_id>/versions/<int:number>")
@@ -337,12 +388,18 @@ def get_version(model_id: str, number: int) -> Response:
     query = ModelQuery().load(request.args.to_dict())
     head = _head(model_id)
     if not head.first_version <= number <= head.version:
-        raise ApiError(404, "version-not-found", "Version not found",
-                       f"version {number} is not kept; versions {head.first_version} to {head.version} are")
+        raise ApiError(
+            404,
+            "version-not-found",
+            "Version not found",
+            f"version {number} is not kept; versions {head.first_version} to {head.version} are",
+        )
     try:
         rec = _service().record(head, number)
     except ModelNotFound:  # pruned between the two reads
-        raise ApiError(404, "version-not-found", "Version not found", f"version {number} is not kept") from None
+        raise ApiError(
+            404, "version-not-found", "Version not found", f"version {number} is not kept"
+        ) from None
     body: dict[str, Any] = {"id": head.model_id, "version": number, "created_at": rec.created_at}
     if query["include_model"]:
         body["model"] = to_document(rec.lp)

@@ -27,7 +27,9 @@ class CommaList(fields.String):
         items = [p.strip() for p in text.split(",") if p.strip()]
         bad = [p for p in items if p not in self.choices]
         if bad:
-            raise ValidationError(f"unknown section(s) {', '.join(bad)}; choose from {', '.join(self.choices)}")
+            raise ValidationError(
+                f"unknown section(s) {', '.join(bad)}; choose from {', '.join(self.choices)}"
+            )
         return tuple(items)
 
 
@@ -62,7 +64,9 @@ class EmptyQuery(Schema):
 
 
 class IdempotencyKey(Schema):
-    key = fields.String(validate=validate.Regexp(IDEMPOTENCY_KEY_RE, error="1 to 255 visible ASCII characters"))
+    key = fields.String(
+        validate=validate.Regexp(IDEMPOTENCY_KEY_RE, error="1 to 255 visible ASCII characters")
+    )
 
     @post_load
     def unwrap(self, data, **kwargs):

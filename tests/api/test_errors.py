@@ -52,8 +52,14 @@ def test_invalid_documents_are_400_with_a_pointer(client, rclient, raw, pointer)
 @pytest.mark.parametrize(
     "patch_body, pointer",
     [
-        ({"variables": {"ship_press_north_cafe_a": {"lower": 10, "upper": 5}}}, "/variables/ship_press_north_cafe_a/lower"),
-        ({"constraints": {"new_row": {"terms": {"no_such_lane": 1}, "upper": 3}}}, "/constraints/new_row/terms/no_such_lane"),
+        (
+            {"variables": {"ship_press_north_cafe_a": {"lower": 10, "upper": 5}}},
+            "/variables/ship_press_north_cafe_a/lower",
+        ),
+        (
+            {"constraints": {"new_row": {"terms": {"no_such_lane": 1}, "upper": 3}}},
+            "/constraints/new_row/terms/no_such_lane",
+        ),
         ({"variables": {"ship_press_north_cafe_a": None}}, "/variables/ship_press_north_cafe_a"),
         ({"sense": "sideways"}, "/sense"),
         ({"objective_offset": "x"}, "/objective_offset"),
@@ -64,7 +70,9 @@ def test_invalid_documents_are_400_with_a_pointer(client, rclient, raw, pointer)
 )
 def test_invalid_patches_are_400_and_change_nothing(client, rclient, mid, patch_body, pointer):
     before = snapshot(rclient)
-    resp = client.patch(f"/v1/models/{mid}", data=orjson.dumps(patch_body), content_type=MERGE, headers=auth())
+    resp = client.patch(
+        f"/v1/models/{mid}", data=orjson.dumps(patch_body), content_type=MERGE, headers=auth()
+    )
     body = assert_problem(resp, 400)
     assert pointer in [e.get("pointer") for e in body["errors"]]
     assert snapshot(rclient) == before
@@ -73,8 +81,12 @@ def test_invalid_patches_are_400_and_change_nothing(client, rclient, mid, patch_
 
 def test_nan_in_a_patch_body_is_rejected(client, rclient, mid):
     before = snapshot(rclient)
-    resp = client.patch(f"/v1/models/{mid}", data=b'{"constraints": {"demand_market": {"lower": NaN}}}',
-                        content_type=MERGE, headers=auth())
+    resp = client.patch(
+        f"/v1/models/{mid}",
+        data=b'{"constraints": {"demand_market": {"lower": NaN}}}',
+        content_type=MERGE,
+        headers=auth(),
+    )
     assert_problem(resp, 400)
     assert snapshot(rclient) == before
 
@@ -115,10 +127,16 @@ def test_body_too_large(app, client, rclient):
 
 def test_bad_mps_is_400(client, rclient):
     before = snapshot(rclient)
-    resp = client.post("/v1/models", data=b"NAME broken\nROWS\n N obj\nCOLUMNS\n x obj\n", content_type="text/x-mps",
-                       headers=auth())
+    resp = client.post(
+        "/v1/models",
+        data=b"NAME broken\nROWS\n N obj\nCOLUMNS\n x obj\n",
+        content_type="text/x-mps",
+        headers=auth(),
+    )
     assert_problem(resp, 400)
-    resp = client.post("/v1/models", data=b"\x1f\x8b\x08\x00garbage", content_type="text/x-mps", headers=auth())
+    resp = client.post(
+        "/v1/models", data=b"\x1f\x8b\x08\x00garbage", content_type="text/x-mps", headers=auth()
+    )
     assert_problem(resp, 400)
     assert snapshot(rclient) == before
 
@@ -138,8 +156,12 @@ def test_unknown_routes_methods_ids_and_parameters(client, mid):
     assert body["errors"][0]["parameter"] == "fields"
     assert_problem(client.get(f"/v1/models/{mid}?colour=red", headers=auth()), 400)
     assert_problem(client.get(f"/v1/models/{mid}/versions/99", headers=auth()), 404)
-    resp = client.patch(f"/v1/models/{mid}", data=b"{}", content_type=MERGE,
-                        headers={**auth(), "Idempotency-Key": "bad key with spaces"})
+    resp = client.patch(
+        f"/v1/models/{mid}",
+        data=b"{}",
+        content_type=MERGE,
+        headers={**auth(), "Idempotency-Key": "bad key with spaces"},
+    )
     assert assert_problem(resp, 400)["errors"][0]["header"] == "Idempotency-Key"
 
 
@@ -157,8 +179,9 @@ def test_storage_down_is_503_not_500(redis_url):
 
     from service.app import create_app
 
-    app = create_app({"REDIS_URL": f"redis://127.0.0.1:{free_port()}/0",
-                      "API_KEYS": {TENANT_KEYS["acme"]: "acme"}})
+    app = create_app(
+        {"REDIS_URL": f"redis://127.0.0.1:{free_port()}/0", "API_KEYS": {TENANT_KEYS["acme"]: "acme"}}
+    )
     client = app.test_client()
     assert_problem(client.get("/readyz"), 503)
     assert_problem(client.get("/v1/models", headers=auth()), 503)

@@ -42,8 +42,18 @@ def served(tmp_path):
     }
     with open(log_path, "wb") as log:
         api = subprocess.Popen(
-            [sys.executable, "-m", "gunicorn", "-c", str(ROOT / "deploy" / "gunicorn.conf.py"), "service.wsgi:app"],
-            cwd=ROOT, env=env, stdout=log, stderr=subprocess.STDOUT,
+            [
+                sys.executable,
+                "-m",
+                "gunicorn",
+                "-c",
+                str(ROOT / "deploy" / "gunicorn.conf.py"),
+                "service.wsgi:app",
+            ],
+            cwd=ROOT,
+            env=env,
+            stdout=log,
+            stderr=subprocess.STDOUT,
         )
     base = f"http://127.0.0.1:{port}"
     deadline = time.monotonic() + 60
@@ -57,7 +67,13 @@ def served(tmp_path):
                 stop_redis(redis_proc)
                 pytest.fail("gunicorn did not become ready:\n" + log_path.read_text()[-3000:])
             time.sleep(0.2)
-    state = {"base": base, "log": log_path, "redis": redis_proc, "redis_dir": redis_dir, "redis_port": redis_port}
+    state = {
+        "base": base,
+        "log": log_path,
+        "redis": redis_proc,
+        "redis_dir": redis_dir,
+        "redis_port": redis_port,
+    }
     yield state
     api.send_signal(signal.SIGTERM)
     try:
@@ -104,8 +120,23 @@ def _restart_redis(workdir: Path, port: int):
 
     import redis
 
-    args = [shutil.which("redis-server"), "--port", str(port), "--bind", "127.0.0.1", "--dir", str(workdir),
-            "--save", "", "--appendonly", "yes", "--daemonize", "no", "--loglevel", "warning"]
+    args = [
+        shutil.which("redis-server"),
+        "--port",
+        str(port),
+        "--bind",
+        "127.0.0.1",
+        "--dir",
+        str(workdir),
+        "--save",
+        "",
+        "--appendonly",
+        "yes",
+        "--daemonize",
+        "no",
+        "--loglevel",
+        "warning",
+    ]
     proc = subprocess.Popen(args, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     client = redis.Redis(host="127.0.0.1", port=port)
     for _ in range(100):

@@ -107,11 +107,19 @@ def test_trimming_the_answer(client):
     slim = client.get(f"/v1/models/{mid}?fields=solve&model=false", headers=auth()).get_json()
     assert "model" not in slim and set(slim["result"]) == {"id", "version", "status", "objective", "solve"}
     used = client.get(f"/v1/models/{mid}?solution=nonzero", headers=auth()).get_json()["result"]["solution"]
-    assert set(used["variables"]) == {"ship_press_north_cafe_a", "ship_press_north_market",
-                                      "ship_press_south_cafe_b", "ship_press_south_market"}
+    assert set(used["variables"]) == {
+        "ship_press_north_cafe_a",
+        "ship_press_north_market",
+        "ship_press_south_cafe_b",
+        "ship_press_south_market",
+    }
     patch = b'{"constraints": {"lane_cap": {"terms": {"ship_press_south_market": 1}, "upper": 20}}}'
-    resp = client.patch(f"/v1/models/{mid}?solution=moved&fields=solution,changes", data=patch,
-                        content_type=MERGE, headers=auth())
+    resp = client.patch(
+        f"/v1/models/{mid}?solution=moved&fields=solution,changes",
+        data=patch,
+        content_type=MERGE,
+        headers=auth(),
+    )
     body = resp.get_json()
     assert set(body["solution"]["variables"]) == {"ship_press_south_market", "ship_press_north_market"}
     assert "pivot_log" not in body and "solve" not in body

@@ -34,8 +34,12 @@ def test_spec_is_valid_openapi_31():
 
 def test_every_route_is_described(app):
     spec = yaml.safe_load(SPEC.read_text())
-    described = {(path, method.upper()) for path, item in spec["paths"].items() for method in item
-                 if method in ("get", "post", "patch", "delete", "put")}
+    described = {
+        (path, method.upper())
+        for path, item in spec["paths"].items()
+        for method in item
+        if method in ("get", "post", "patch", "delete", "put")
+    }
     served = set()
     for rule in app.url_map.iter_rules():
         if rule.endpoint == "static":
@@ -87,8 +91,13 @@ def test_api_conforms_to_its_description(app, client, path, method, mode):
     strategy = operation.as_strategy(generation_mode=mode)
 
     @given(case=strategy)
-    @settings(max_examples=30, deadline=None, suppress_health_check=list(HealthCheck), database=None,
-              phases=[Phase.explicit, Phase.generate])
+    @settings(
+        max_examples=30,
+        deadline=None,
+        suppress_health_check=list(HealthCheck),
+        database=None,
+        phases=[Phase.explicit, Phase.generate],
+    )
     def run(case):
         steer = method != "DELETE" and next(turn) % 2 == 0  # keep the model alive for the other cases
         if "model_id" in (case.path_parameters or {}) and steer:

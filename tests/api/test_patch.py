@@ -18,8 +18,12 @@ def new_model(client) -> str:
 
 
 def patch(client, mid, body, path="", headers=None, query=""):
-    return client.patch(f"/v1/models/{mid}{path}{query}", data=orjson.dumps(body), content_type=MERGE,
-                        headers={**auth(), **(headers or {})})
+    return client.patch(
+        f"/v1/models/{mid}{path}{query}",
+        data=orjson.dumps(body),
+        content_type=MERGE,
+        headers={**auth(), **(headers or {})},
+    )
 
 
 def current_doc(client, mid) -> dict:
@@ -28,8 +32,11 @@ def current_doc(client, mid) -> dict:
 
 def test_violated_constraint_is_reoptimized_warm_by_dual_simplex(client):
     mid = new_model(client)
-    resp = patch(client, mid, {"constraints": {"lane_cap_south_market": {
-        "terms": {"ship_press_south_market": 1}, "upper": 20}}})
+    resp = patch(
+        client,
+        mid,
+        {"constraints": {"lane_cap_south_market": {"terms": {"ship_press_south_market": 1}, "upper": 20}}},
+    )
     assert resp.status_code == 200 and resp.headers["ETag"] == '"v2"'
     body = resp.get_json()
     assert body["version"] == 2 and body["status"] == "optimal"
@@ -37,15 +44,29 @@ def test_violated_constraint_is_reoptimized_warm_by_dual_simplex(client):
     assert body["solve"]["pivots"] >= 1 and body["solve"]["fallback"] is None
     pivots = [e for e in body["pivot_log"] if "event" not in e]
     assert len(pivots) == body["solve"]["pivots"]
-    assert {"iteration", "algorithm", "leaving", "entering", "pivot", "step", "objective",
-            "primal_infeasibility", "dual_infeasibility", "bound_flips"} <= set(pivots[0])
+    assert {
+        "iteration",
+        "algorithm",
+        "leaving",
+        "entering",
+        "pivot",
+        "step",
+        "objective",
+        "primal_infeasibility",
+        "dual_infeasibility",
+        "bound_flips",
+    } <= set(pivots[0])
     assert pivots[0]["algorithm"] == "dual" and pivots[0]["leaving"] == "lane_cap_south_market"
     # reference solve: scipy.optimize.linprog (HiGHS) on the changed document
     assert body["objective"] == pytest.approx(reference_objective(current_doc(client, mid)), rel=1e-9)
     assert body["objective"] == pytest.approx(400.0)
     changes = body["changes"]
     assert changes["model"]["rows_added"] == ["lane_cap_south_market"] and changes["model"]["kind"] == "dual"
-    assert changes["objective"] == {"before": 385.0, "after": pytest.approx(400.0), "delta": pytest.approx(15.0)}
+    assert changes["objective"] == {
+        "before": 385.0,
+        "after": pytest.approx(400.0),
+        "delta": pytest.approx(15.0),
+    }
     assert changes["variables"]["ship_press_south_market"] == {"before": 35.0, "after": pytest.approx(20.0)}
     assert changes["variables"]["ship_press_north_market"] == {"before": 10.0, "after": pytest.approx(25.0)}
     assert body["solution"]["constraints"]["lane_cap_south_market"]["shadow_price"] == pytest.approx(-1.0)
@@ -53,10 +74,14 @@ def test_violated_constraint_is_reoptimized_warm_by_dual_simplex(client):
 
 def test_profitable_variable_is_reoptimized_warm_by_primal_simplex(client):
     mid = new_model(client)
-    resp = patch(client, mid, {
-        "variables": {"ship_press_east_market": {"cost": 2, "upper": 40}},
-        "constraints": {"demand_market": {"terms": {"ship_press_east_market": 1}}},
-    })
+    resp = patch(
+        client,
+        mid,
+        {
+            "variables": {"ship_press_east_market": {"cost": 2, "upper": 40}},
+            "constraints": {"demand_market": {"terms": {"ship_press_east_market": 1}}},
+        },
+    )
     body = resp.get_json()
     assert resp.status_code == 200
     assert body["solve"]["warm"] is True and body["solve"]["method"] == "primal"
@@ -65,17 +90,22 @@ def test_profitable_variable_is_reoptimized_warm_by_primal_simplex(client):
     assert body["objective"] == pytest.approx(reference_objective(current_doc(client, mid)), rel=1e-9)
     assert body["solution"]["variables"]["ship_press_east_market"]["value"] == pytest.approx(40)
     assert body["changes"]["model"]["columns_added"] == ["ship_press_east_market"]
-    assert body["changes"]["variables"]["ship_press_east_market"] == {"before": None, "after": pytest.approx(40)}
+    assert body["changes"]["variables"]["ship_press_east_market"] == {
+        "before": None,
+        "after": pytest.approx(40),
+    }
 
 
 def test_section_endpoints_and_removals(client):
     mid = new_model(client)
-    resp = patch(client, mid, {"lane_cap": {"terms": {"ship_press_south_market": 1}, "upper": 30}},
-                 path="/constraints")
+    resp = patch(
+        client, mid, {"lane_cap": {"terms": {"ship_press_south_market": 1}, "upper": 30}}, path="/constraints"
+    )
     assert resp.status_code == 200 and resp.get_json()["version"] == 2
     resp = patch(client, mid, {"ship_press_north_cafe_b": {"upper": 0}}, path="/variables")
     assert resp.status_code == 200 and resp.get_json()["changes"]["model"]["column_bounds"] == [
-        "ship_press_north_cafe_b"]
+        "ship_press_north_cafe_b"
+    ]
     resp = patch(client, mid, {"lane_cap": None}, path="/constraints")
     body = resp.get_json()
     assert body["changes"]["model"]["rows_removed"] == ["lane_cap"] and body["version"] == 4
@@ -92,7 +122,11 @@ def test_cost_and_sense_changes_and_lower_bound_null(client):
     resp = patch(client, mid, {"variables": {"ship_press_south_market": {"cost": 9}}})
     body = resp.get_json()
     assert body["changes"]["model"]["costs"] == ["ship_press_south_market"]
-    assert body["solve"]["warm"] is True and body["solve"]["method"] in ("primal", "dual+primal", "primal+dual")
+    assert body["solve"]["warm"] is True and body["solve"]["method"] in (
+        "primal",
+        "dual+primal",
+        "primal+dual",
+    )
     assert body["objective"] == pytest.approx(reference_objective(current_doc(client, mid)), rel=1e-9)
     resp = patch(client, mid, {"variables": {"ship_press_south_cafe_b": {"lower": None, "upper": 25}}})
     assert current_doc(client, mid)["variables"]["ship_press_south_cafe_b"]["lower"] is None
@@ -111,7 +145,9 @@ def test_if_match(client, rclient):
     ok = patch(client, mid, {"constraints": {"demand_cafe_a": {"lower": 31}}}, headers={"If-Match": '"v1"'})
     assert ok.status_code == 200 and ok.headers["ETag"] == '"v2"'
     before = snapshot(rclient)
-    stale = patch(client, mid, {"constraints": {"demand_cafe_a": {"lower": 32}}}, headers={"If-Match": '"v1"'})
+    stale = patch(
+        client, mid, {"constraints": {"demand_cafe_a": {"lower": 32}}}, headers={"If-Match": '"v1"'}
+    )
     assert stale.status_code == 412 and stale.mimetype == "application/problem+json"
     assert stale.get_json()["current_version"] == 2 and stale.headers["ETag"] == '"v2"'
     assert snapshot(rclient) == before
@@ -129,8 +165,11 @@ def test_concurrent_patches_are_serialized_and_none_is_lost(app):
     def worker(k: int) -> None:
         c = app.test_client()
         barrier.wait()
-        resp = patch(c, mid, {"constraints": {f"audit_{k}": {"terms": {"ship_press_north_cafe_a": 1},
-                                                             "upper": 100 + k}}})
+        resp = patch(
+            c,
+            mid,
+            {"constraints": {f"audit_{k}": {"terms": {"ship_press_north_cafe_a": 1}, "upper": 100 + k}}},
+        )
         statuses.append(resp.status_code)
 
     threads = [threading.Thread(target=worker, args=(k,)) for k in range(n)]
