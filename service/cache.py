@@ -1,11 +1,10 @@
 """In-process cache of recent model versions, keyed by (model id, version).
 
 A PATCH on a hot model finds the decoded model, basis and solution here and
-skips reading and decoding them from Redis. ``engine_state`` is the seam for
-the engine's own warm state (the factorization of the final basis): the
-engine may hand one back with a result and take it again on the next
-re-optimization of the same (model, version). Until the engine offers that,
-it stays None. Entries are immutable once put: a version never changes, so
+skips reading and decoding them from Redis. ``engine_state`` is the engine's
+own warm state (``SolveResult.state``: scaling and factorization of the final
+basis), handed back to ``reoptimize`` on the next change of the same
+(model, version); it lives only in this process and is None after a miss. Entries are immutable once put: a version never changes, so
 the key alone says an entry is current, and no invalidation is needed beyond
 ``drop`` on delete.
 

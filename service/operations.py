@@ -120,7 +120,7 @@ class ModelService:
         else:  # pragma: no cover - 80 random bits colliding three times
             raise ModelExists(model_id)
         timings["store"] = time.perf_counter() - t
-        self.cache.put(model_id, 1, rec)
+        self.cache.put(model_id, 1, rec, engine_state=getattr(res, "state", None))
         return Outcome(head, rec, created=True, timings=timings)
 
     # ---------------------------------------------------------------- changing
@@ -150,7 +150,11 @@ class ModelService:
                     return self._replay(head, done)
             if if_match is not None and "*" not in if_match and head.etag not in if_match:
                 raise PreconditionFailed(head)
-            prior = self.record(head)
+            cached = self.cache.get(model_id, head.version)
+            if cached is not None:
+                prior, state = cached.record, cached.engine_state
+            else:
+                prior, state = self.record(head), None
             timings["load"] = timings.get("load", 0.0) + time.perf_counter() - t
 
             t = time.perf_counter()
@@ -160,7 +164,7 @@ class ModelService:
                 return Outcome(head, prior, timings=timings, attempts=attempt)
 
             t = time.perf_counter()
-            res, start_basis = self._reoptimize(prior, new_lp, changes)
+            res, start_basis = self._reoptimize(prior, new_lp, changes, state)
             timings["solve"] = timings.get("solve", 0.0) + time.perf_counter() - t
 
             t = time.perf_counter()
@@ -182,7 +186,7 @@ class ModelService:
             except AlreadyApplied as done:
                 return self._replay(head, done.version)
             timings["store"] = timings.get("store", 0.0) + time.perf_counter() - t
-            self.cache.put(model_id, new_head.version, rec)
+            self.cache.put(model_id, new_head.version, rec, engine_state=getattr(res, "state", None))
             return Outcome(new_head, rec, created=True, timings=timings, attempts=attempt)
         raise TooMuchContention(f"gave up after {self.max_attempts} attempts")
 
@@ -206,15 +210,22 @@ class ModelService:
             res.reason = f"cold solve of a {reason}"
         return res
 
-    def _reoptimize(self, prior: VersionRecord, new_lp: LinearProgram, changes: ChangeSet):
-        """Warm re-optimization from the stored basis carried over by name; cold if there is none."""
+    def _reoptimize(
+        self, prior: VersionRecord, new_lp: LinearProgram, changes: ChangeSet, state: Any = None
+    ) -> tuple[SolveResult, Basis | None]:
+        """Warm re-optimization from the stored basis carried over by name; cold if there is none.
+
+        ``state`` is the engine's in-process warm state of the prior version (from the version
+        cache): the engine reuses its scaling and factorization when the change allows it.
+        """
         basis = prior.basis
         if basis is None or basis.n != prior.lp.n or basis.m != prior.lp.m:
             return self._cold(new_lp, "changed model", fallback={"reason": "no_stored_basis"}), None
         start, _report = engine.remap(basis, prior.lp.col_names, prior.lp.row_names, new_lp)
-        # seam: the cached engine state of (model, prior version) goes to the engine here once it takes one
         try:
-            res = engine.reoptimize(new_lp, start, self.options, change_summary=describe(changes))
+            res = engine.reoptimize(
+                new_lp, start, self.options, change_summary=describe(changes), state=state
+            )
         except Exception as exc:  # the engine failed outright: answer with a cold solve, and say so
             log.exception("warm re-optimization raised; solving cold")
             res = self._cold(

@@ -223,3 +223,16 @@ def test_idempotent_create_and_recovery_after_a_lost_record(client, rclient):
     recreated = client.post("/v1/models", json=juice_network(), headers={**auth(), **key})
     assert recreated.status_code == 201 and recreated.get_json()["id"] == mid
     assert client.get("/v1/models", headers=auth()).get_json()["total"] == 1
+
+
+def test_hot_versions_keep_the_engine_state_for_the_next_change(app, client):
+    mid = new_model(client)
+    patch(client, mid, {"constraints": {"lane_cap": {"terms": {"ship_press_south_market": 1}, "upper": 30}}})
+    cache = app.extensions["hotbasis"].service.cache
+    entry = cache.get(mid, 2)
+    assert entry is not None and entry.record.version == 2
+    assert entry.engine_state is not None  # the warm solve's state, handed to the next reoptimize
+    resp = patch(client, mid, {"constraints": {"lane_cap": {"upper": 25}}})
+    body = resp.get_json()
+    assert body["solve"]["warm"] is True and body["version"] == 3
+    assert body["objective"] == pytest.approx(reference_objective(current_doc(client, mid)), rel=1e-9)
