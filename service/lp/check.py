@@ -276,7 +276,13 @@ def verify_farkas(lp: LinearProgram, y: np.ndarray, tol: float = 1e-6) -> dict[s
     y = y / norm
     z = lp.A.T @ y
     col_scale = np.maximum(1.0, _abs_max(lp, axis=0))
-    z[np.abs(z) <= tol * col_scale] = 0.0
+    # A small entry counts as rounding noise (zero) when its column has both
+    # bounds finite, or when it is tiny even for noise; a small but real entry
+    # on a column that can run to infinity must be judged, or a feasible model
+    # whose only repair is a huge move would pass as proven infeasible.
+    small = np.abs(z) <= tol * col_scale
+    open_col = ~(np.isfinite(lp.col_lower) & np.isfinite(lp.col_upper))
+    z[small & (~open_col | (np.abs(z) <= 1e-12 * col_scale))] = 0.0
 
     def extreme(sign: float) -> tuple[float, float, int]:
         """sign=+1: max of z@x - y@r over the box; sign=-1: min. Returns (value, largest term, infinite terms)."""

@@ -9,6 +9,7 @@ in ``fallback``; a result that fails its check is never reported optimal.
 from __future__ import annotations
 
 import time
+from dataclasses import replace
 
 import numpy as np
 import scipy.linalg as la
@@ -96,6 +97,9 @@ def _builtin(
     except (NumericalTrouble, SingularBasis) as exc:
         why = getattr(exc, "reason", "singular_basis")
         return _fallback_or_error(lp, options, warm, why, str(exc), t)
+    except (ValueError, ArithmeticError, IndexError, FloatingPointError) as exc:
+        # a defect of ours must not surface as a crash: answer from HiGHS and say why
+        return _fallback_or_error(lp, options, warm, "internal_error", f"{type(exc).__name__}: {exc}", t)
     if out.status not in (OPTIMAL, INFEASIBLE, UNBOUNDED):
         return _fallback_or_error(lp, options, warm, out.status, f"stopped after {out.pivots} pivots", t)
 
@@ -136,7 +140,16 @@ def _fallback_or_error(
     lp: LinearProgram, options: SolveOptions, warm: bool, reason: str, detail: str, t0: float
 ) -> SolveResult:
     if options.fallback:
-        res = _highs(lp, options, fallback={"reason": reason, "detail": detail})
+        # The cold solve gets its own iteration budget (the warm one is what ran
+        # out) and the time left of the caller's limit, but at least a tenth of
+        # it, so a request takes at most 1.1 times its time limit.
+        elapsed = time.perf_counter() - t0
+        cold = replace(
+            options,
+            max_iterations=SolveOptions().max_iterations,
+            time_limit=max(options.time_limit - elapsed, 0.1 * options.time_limit),
+        )
+        res = _highs(lp, cold, fallback={"reason": reason, "detail": detail})
         res.timings["total"] = time.perf_counter() - t0
         return res
     status = reason if reason in ("iteration_limit", "time_limit") else ERROR
@@ -267,8 +280,7 @@ def repair_basis(lp: LinearProgram, basis: Basis) -> tuple[Basis, dict | None]:
     report = {
         "repaired": True,
         "method": "rank_revealing_qr",
-        "columns_dropped": [lp.col_names[j] for j in dropped if j < n][:50],
-        "logicals_added": [lp.row_names[i] for i in rows if not was_basic[i]][:50],
+        **_repair_lists(lp, dropped, n + rows, status),
         "basic_before": int(basic.size),
     }
     Factor(_basis_matrix(lp, np.flatnonzero(np.concatenate([out.col_status, out.row_status]) == Status.BASIC)))
@@ -299,11 +311,21 @@ def _structural_repair(lp: LinearProgram, status: np.ndarray, basic: np.ndarray)
     report = {
         "repaired": True,
         "method": "structural",
-        "columns_dropped": [lp.col_names[j] if j < n else lp.row_names[j - n] for j in dropped][:50],
-        "logicals_added": [lp.row_names[i] for i in rows if status[n + i] != Status.BASIC][:50],
+        **_repair_lists(lp, dropped, n + rows, status),
         "basic_before": int(basic.size),
     }
     return out, report
+
+
+def _repair_lists(lp: LinearProgram, dropped: np.ndarray, entered: np.ndarray, before: np.ndarray) -> dict:
+    """Names of what a repair took out of and put into the basis (50 of each at most)."""
+    n = lp.n
+    entered = entered[before[entered] != Status.BASIC]
+    return {
+        "columns_dropped": [lp.col_names[j] for j in dropped if j < n][:50],
+        "logicals_dropped": [lp.row_names[j - n] for j in dropped if j >= n][:50],
+        "logicals_added": [lp.row_names[j - n] for j in entered if j >= n][:50],
+    }
 
 
 def _natural_for(basis: Basis, lp: LinearProgram, idx: np.ndarray) -> Basis:

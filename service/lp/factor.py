@@ -100,6 +100,7 @@ class Factor(_EtaFile):
         self.m = B.shape[0]
         self.depth = 0
         self.seconds = 0.0
+        self.lu_nnz = 0
         if self.m == 0:
             self.lu = None
             return
@@ -112,6 +113,7 @@ class Factor(_EtaFile):
         except RuntimeError as exc:  # "Factor is exactly singular"
             raise SingularBasis(str(exc)) from exc
         self.seconds = time.perf_counter() - started  # what a refactorization costs here
+        self.lu_nnz = int(self.lu.L.nnz + self.lu.U.nnz)
         udiag = np.abs(self.lu.U.diagonal())
         if udiag.size and (udiag.min() <= 1e-11 * max(1.0, udiag.max()) or not np.isfinite(udiag).all()):
             raise SingularBasis("basis matrix is numerically singular")
@@ -135,6 +137,7 @@ class BorderedFactor(_EtaFile):
         self.m = base.m + self.C.shape[0]
         self.depth = getattr(base, "depth", 0) + 1
         self.seconds = getattr(base, "seconds", 0.0)
+        self.lu_nnz = getattr(base, "lu_nnz", 0)
 
     @property
     def updates(self) -> int:

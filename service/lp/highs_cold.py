@@ -299,6 +299,8 @@ def _attach_farkas(result: SolveResult, h: highspy.Highs, lp: LinearProgram, opt
         if h.getModelStatus() == _MS.kInfeasible:
             y = _ray(h.getDualRay)
     if y is None:
+        y = _single_row_certificate(lp)
+    if y is None:
         return "HiGHS provided no dual ray, so no infeasibility certificate is given"
     chk = verify_farkas(lp, y, tol=options.check_tol)
     if chk["passed"] and chk["side"] == "min>0":
@@ -307,6 +309,32 @@ def _attach_farkas(result: SolveResult, h: highspy.Highs, lp: LinearProgram, opt
     result.farkas = y
     result.check = {"farkas": chk}
     return "" if chk["passed"] else "HiGHS's dual ray fails the independent infeasibility check"
+
+
+def _single_row_certificate(lp: LinearProgram) -> np.ndarray | None:
+    """e_i for a row whose bounds no point of the column box can meet (interval
+    arithmetic on the row's activity range), e.g. an empty row excluding 0."""
+    A = lp.A.tocsr()
+    pos = A.maximum(0)
+    neg = A.minimum(0)
+    lo = np.where(np.isfinite(lp.col_lower), lp.col_lower, -np.inf)
+    up = np.where(np.isfinite(lp.col_upper), lp.col_upper, np.inf)
+
+    def dot(M, v):  # M @ v with 0 * inf = 0 (empty entries do not count)
+        out = np.zeros(lp.m)
+        coo = M.tocoo()
+        with np.errstate(invalid="ignore"):
+            np.add.at(out, coo.row, coo.data * v[coo.col])
+        return out
+
+    act_max = dot(pos, up) + dot(neg, lo)
+    act_min = dot(pos, lo) + dot(neg, up)
+    bad = np.flatnonzero((act_max < lp.row_lower) | (act_min > lp.row_upper))
+    if bad.size == 0:
+        return None
+    y = np.zeros(lp.m)
+    y[bad[0]] = 1.0
+    return y
 
 
 def _attach_ray(result: SolveResult, h: highspy.Highs, lp: LinearProgram, options: SolveOptions) -> str:

@@ -92,11 +92,13 @@ MAX_REUSE_DEPTH = 6  # bordered layers on one factorization before a fresh one
 
 def _refactor_interval(factor, options: SolveOptions) -> int:
     """Updates between refactorizations, balancing the factorization's cost
-    against the growing eta file: about sqrt(2 * t_factor / t_eta) with
-    t_eta ~ 15 us per eta per solve (measured on the supply-chain benchmark),
-    at least 16 and never above the option."""
-    took = getattr(factor, "seconds", 0.0)
-    return int(min(options.refactor_every, max(16, np.sqrt(2.0 * took / 15e-6))))
+    against the growing eta file: about sqrt(2 * t_factor / t_eta). Both are
+    modelled from the LU's size so the pivot sequence is reproducible:
+    t_factor ~ 38 ns per nonzero of L + U and t_eta ~ 15 us per eta and solve
+    (measured on the 10,000-row supply-chain benchmark), giving
+    sqrt(nnz(L + U) / 200); at least 16 and never above the option."""
+    nnz = getattr(factor, "lu_nnz", 0)
+    return int(min(options.refactor_every, max(16, np.sqrt(nnz / 200.0))))
 
 
 @dataclass
@@ -158,6 +160,8 @@ class Simplex:
             self.basic_idx = basic.astype(np.int64)
         self.x = np.zeros(self.N)
         self.dse = np.ones(m)
+        self.dse_stale = False
+        self.rule_override = None
         self.devex = np.ones(self.N)
         self.iteration = 0
         self.algorithms: list[str] = []
@@ -426,7 +430,7 @@ class Simplex:
         cand = np.flatnonzero(np.abs(infeas) > tol)
         if cand.size == 0:
             return -1
-        rule = self.opt.dual_pricing
+        rule = self.rule_override or self.opt.dual_pricing
         if rule == "smallest_index":
             return int(cand[np.argmin(self.basic_idx[cand])])
         if rule == "dantzig":
@@ -463,7 +467,8 @@ class Simplex:
         range_ = (self.upper[cand] - self.lower[cand]) * a_abs  # inf when not boxed
         range_ = np.where(st == FREE, np.inf, range_)
         slope = abs(delta)
-        can_flip = self.opt.dual_pricing != "smallest_index"
+        bland = (self.rule_override or self.opt.dual_pricing) == "smallest_index"
+        can_flip = not bland
         flips: list[np.ndarray] = []
         rest = np.arange(cand.size)
         # Pass over breakpoint groups in increasing ratio without sorting all
@@ -484,7 +489,7 @@ class Simplex:
                 rest = rest[~in_group]
                 continue
             # Harris pass 2: the largest |alpha| among the group
-            if self.opt.dual_pricing == "smallest_index":
+            if bland:
                 best = group[np.argmin(cand[group])]
             else:
                 best = group[np.argmax(a_abs[group])]
@@ -514,10 +519,14 @@ class Simplex:
         self.algorithms.append("dual")
         ptol = self.opt.pivot_tol
         dse = self.opt.dual_pricing == "steepest_edge"
+        if self.dse_stale:  # primal pivots changed the basis without updating them
+            self.dse[:] = 1.0
+            self.dse_stale = False
         best_obj = -np.inf
         since_progress = 0
-        perturbed = False
+        stalls = 0
         trouble = 0
+        self.rule_override = None
         infeas = self.primal_infeasibilities()
         while True:
             self.check_limits()
@@ -540,6 +549,11 @@ class Simplex:
                     self.refactor("confirm_infeasibility")
                     infeas = self.primal_infeasibilities()
                     continue
+                if self._tiny_entries_could_repair(alpha_r, nz, delta):
+                    raise NumericalTrouble(
+                        "unproven_infeasibility",
+                        "only pivot-row entries below the pivot tolerance could repair the row",
+                    )
                 self._record_farkas(rho, p, r, delta)
                 return "infeasible"
             # one multi-column FTRAN: entering column, DSE's tau = B^-1 rho, flips
@@ -592,15 +606,46 @@ class Simplex:
                 )
             )
             obj = float(self.cost @ self.x)
-            if obj > best_obj + 1e-9 * (1.0 + abs(best_obj)):
+            if obj > best_obj + 1e-13 * (1.0 + abs(obj)):  # (best_obj starts at -inf)
                 best_obj = obj
                 since_progress = 0
             else:
                 since_progress += 1
-                if since_progress >= self.opt.stall_limit and not perturbed:
-                    self.perturb_costs()
-                    perturbed = True
+                if since_progress >= self.opt.stall_limit:
+                    # first remedy: perturb costs; second: the smallest-index rule
+                    # for the rest of this phase; a third stall gives up
+                    stalls += 1
                     since_progress = 0
+                    if stalls == 1:
+                        self.perturb_costs()
+                        best_obj = -np.inf  # the objective is measured with new costs now
+                    elif stalls == 2:
+                        self.rule_override = "smallest_index"
+                        self.events.append(
+                            {"event": "rule_switch", "iteration": self.iteration, "reason": "dual_stall"}
+                        )
+                    else:
+                        raise NumericalTrouble("stalled", "dual simplex made no progress after perturbing and Bland's rule")
+
+    def _tiny_entries_could_repair(self, alpha_r: np.ndarray, nz: np.ndarray, delta: float) -> bool:
+        """Entries below the pivot tolerance are skipped by the ratio test; if one
+        of them moves toward an infinite bound, the row might be repairable by an
+        unbounded move and the "infeasible" verdict is not proven."""
+        s = 1.0 if delta < 0 else -1.0
+        st = self.status[nz]
+        at = s * alpha_r[nz]
+        mag = np.abs(at)
+        # below the pivot tolerance but above rounding noise (common practice: ~1e-12)
+        tiny = (mag <= self.opt.pivot_tol) & (mag > 1e-12 * max(1.0, mag.max(initial=0.0)))
+        up_free = ~np.isfinite(self.upper[nz])
+        lo_free = ~np.isfinite(self.lower[nz])
+        # at lower with at < 0 increases toward upper; at upper with at > 0 decreases toward lower
+        risky = tiny & (
+            ((st == AT_LOWER) & (at < 0) & up_free)
+            | ((st == AT_UPPER) & (at > 0) & lo_free)
+            | (st == FREE)
+        )
+        return bool(risky.any())
 
     def _record_farkas(self, rho: np.ndarray, p: int, r: int, delta: float) -> None:
         # rho_i is exactly zero in theory for every other basic logical
@@ -653,7 +698,9 @@ class Simplex:
             return -2, np.inf, 0
         a = at[idx]
         room = np.where(a > 0, xb[idx] - lo[idx], up[idx] - xb[idx])
-        harris = (room + tol) / np.abs(a)
+        # a basic already outside its bound by more than tol (rounding spread by
+        # a refactorization) must not make the Harris bound negative
+        harris = (np.maximum(room, 0.0) + tol) / np.abs(a)
         tmax = harris.min()
         if np.isfinite(own) and own <= tmax:
             return -1, own, 0
@@ -666,6 +713,7 @@ class Simplex:
 
     def _primal(self) -> str:
         self.algorithms.append("primal")
+        self.dse_stale = True
         best_obj = np.inf
         since_progress = 0
         perturbed = False
@@ -731,15 +779,20 @@ class Simplex:
                 )
             )
             obj = float(self.cost @ self.x)
-            if obj < best_obj - 1e-9 * (1.0 + abs(best_obj)):
+            if obj < best_obj - 1e-13 * (1.0 + abs(obj)):  # (best_obj starts at +inf)
                 best_obj = obj
                 since_progress = 0
             else:
                 since_progress += 1
-                if since_progress >= self.opt.stall_limit and not perturbed:
+                if since_progress >= self.opt.stall_limit:
+                    if perturbed:
+                        raise NumericalTrouble(
+                            "stalled", f"primal simplex made no progress in {since_progress} pivots"
+                        )
                     self.perturb_bounds()
                     perturbed = True
                     since_progress = 0
+                    best_obj = np.inf
                     self.compute_primal()
 
     # ================================================================ driver
