@@ -83,7 +83,7 @@ def compute_ranging(
         rows = basic_struct_rows[start : start + BLOCK]
         E = np.zeros((m, rows.size))
         E[rows, np.arange(rows.size)] = 1.0
-        rho = factor.lu.solve(E, trans="T")  # m x k
+        rho = factor.solve_block_t(E)  # m x k
         alpha = np.vstack([AT @ rho, -rho])[nonbasic]  # |N| x k
         dlo, dhi = _cost_ratio(alpha, nb_status[:, None], nb_d[:, None], tol)
         j = basic[rows]
@@ -108,7 +108,7 @@ def compute_ranging(
         rows = binding[start : start + BLOCK]
         E = np.zeros((m, rows.size))
         E[rows, np.arange(rows.size)] = 1.0
-        w = factor.lu.solve(E)  # dx_B / d(bound) per column
+        w = factor.solve_block(E)  # dx_B / d(bound) per column
         up_room = np.where(w > tol, (ub[:, None] - xb[:, None]) / np.where(w > tol, w, 1.0), np.inf)
         up_room = np.minimum(
             up_room, np.where(w < -tol, (lb[:, None] - xb[:, None]) / np.where(w < -tol, w, 1.0), np.inf)
