@@ -54,17 +54,11 @@ def reoptimize(
         raise ValueError("basis shape does not match the model; carry it over with remap() first")
     basis = normalize_nonbasic(basis, lp)
     reason = change_summary or "warm start from the stored basis"
-    if Simplex.reuse_applies(lp, basis, state, options):
-        return _builtin(lp, basis, options, warm=True, reason=reason, state=state)
-    repair = None
-    try:
-        basis, repair = repair_basis(lp, basis)
-    except SingularBasis as exc:
-        return _highs(lp, options, fallback={"reason": "basis_repair_failed", "detail": str(exc)})
-    res = _builtin(lp, basis, options, warm=True, reason=reason)
-    if repair:
-        res.check["basis_repair"] = repair
-    return res
+    if not Simplex.reuse_applies(lp, basis, state, options):
+        state = None
+    # The basis is repaired only if it turns out broken (wrong count, or the
+    # initial factorization fails), so a sound basis is factorized just once.
+    return _builtin(lp, basis, options, warm=True, reason=reason, state=state, repair=True)
 
 
 # --------------------------------------------------------------------------- internals
@@ -83,7 +77,14 @@ def _highs(lp: LinearProgram, options: SolveOptions, fallback: dict | None) -> S
 
 
 def _builtin(
-    lp: LinearProgram, basis: Basis, options: SolveOptions, *, warm: bool, reason: str, state=None
+    lp: LinearProgram,
+    basis: Basis,
+    options: SolveOptions,
+    *,
+    warm: bool,
+    reason: str,
+    state=None,
+    repair: bool = False,
 ) -> SolveResult:
     t = time.perf_counter()
     if lp.trivially_inconsistent_bounds():
@@ -91,12 +92,23 @@ def _builtin(
         return _finish_error(
             lp, options, warm, f"lower bound above upper bound for {', '.join(bad[:5])}", t, INFEASIBLE
         )
+    sim = None
     try:
         sim = Simplex(lp, basis, options, state)
         out = sim.run()
-    except (NumericalTrouble, SingularBasis) as exc:
-        why = getattr(exc, "reason", "singular_basis")
-        return _fallback_or_error(lp, options, warm, why, str(exc), t)
+    except SingularBasis as exc:
+        if repair and (sim is None or sim.factor is None):  # broken before the first pivot
+            try:
+                fixed, report = repair_basis(lp, basis)
+            except SingularBasis as exc2:
+                return _fallback_or_error(lp, options, warm, "basis_repair_failed", str(exc2), t)
+            res = _builtin(lp, fixed, options, warm=warm, reason=reason)
+            if report:
+                res.check["basis_repair"] = report
+            return res
+        return _fallback_or_error(lp, options, warm, "singular_basis", str(exc), t)
+    except NumericalTrouble as exc:
+        return _fallback_or_error(lp, options, warm, exc.reason, str(exc), t)
     except (ValueError, ArithmeticError, IndexError, FloatingPointError) as exc:
         # a defect of ours must not surface as a crash: answer from HiGHS and say why
         return _fallback_or_error(lp, options, warm, "internal_error", f"{type(exc).__name__}: {exc}", t)
