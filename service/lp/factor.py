@@ -69,7 +69,7 @@ class _EtaFile:
         """FTRAN of several columns at once (one LU solve with k right-hand sides)."""
         if self.m == 0:
             return np.zeros((0, cols.shape[1]))
-        v = self._solve(np.asfortranarray(cols, dtype=np.float64))
+        v = self._solve(np.asarray(cols, dtype=np.float64))
         if v.ndim == 1:
             v = v.reshape(-1, 1)
         for r, idx, vals, piv in self.etas:
@@ -161,9 +161,17 @@ class Factor(_EtaFile):
 
     def _solve(self, a: np.ndarray) -> np.ndarray:
         if self.row_perm is None:
-            return self.lu.solve(a)
-        v = np.empty_like(a)
-        v[self.col_perm] = self.lu.solve(np.asfortranarray(a[self.row_perm]))
+            return self.lu.solve(a if a.ndim == 1 else np.asfortranarray(a))
+        if a.ndim == 1:
+            v = np.empty_like(a)
+            v[self.col_perm] = self.lu.solve(a[self.row_perm])
+            return v
+        # gather column by column into Fortran order (much cheaper than 2-D fancy indexing)
+        rhs = np.empty(a.shape, order="F")
+        for i in range(a.shape[1]):
+            rhs[:, i] = a[:, i][self.row_perm]
+        v = np.empty(a.shape)
+        v[self.col_perm] = self.lu.solve(rhs)
         return v
 
     def _solve_t(self, h: np.ndarray) -> np.ndarray:
