@@ -86,8 +86,21 @@ def solution_of(res: SolveResult) -> Solution:
     return Solution(res.x, res.row_activity, res.shadow_price, res.reduced_cost)
 
 
+def split_log(entries: list[dict[str, Any]]) -> tuple[list[dict[str, Any]], list[dict[str, Any]]]:
+    """Pivots apart from engine events (refactorization, reuse, perturbation, rule switch).
+
+    The engine hands both over in one list; the contract's pivot_log is one
+    entry per pivot with the same fields each, so events are reported in
+    ``solve.events`` instead.
+    """
+    pivots = [e for e in entries if "event" not in e]
+    events = [e for e in entries if "event" in e]
+    return pivots, events
+
+
 def result_record(res: SolveResult, lp: LinearProgram, changes: dict[str, Any] | None) -> dict[str, Any]:
     """The JSON part of a result that is stored with its version."""
+    pivots, events = split_log([_name_log_entry(e, lp) for e in res.pivot_log])
     timings = {k: round(v * 1000.0, 3) for k, v in res.timings.items() if isinstance(v, (int, float))}
     objective = None if res.objective is None or not math.isfinite(res.objective) else float(res.objective)
     return {
@@ -104,8 +117,9 @@ def result_record(res: SolveResult, lp: LinearProgram, changes: dict[str, Any] |
             "time_ms": timings.get("total", round(sum(timings.values()), 3)),
             "timings_ms": timings,
             "log_dropped": int(res.log_dropped),
+            "events": events,
         },
-        "pivot_log": [_name_log_entry(e, lp) for e in res.pivot_log],
+        "pivot_log": pivots,
         "changes": changes,
     }
 
@@ -202,10 +216,15 @@ def render_result(
         out["message"] = res["message"]
     if "solution" in sections:
         out["solution"] = solution_json(record.lp, record.solution, record.basis, solution_view, record)
+    pivot_log = res["pivot_log"]
+    solve = res["solve"]
+    if "events" not in solve:  # stored before events had their own list
+        pivot_log, events = split_log(pivot_log)
+        solve = {**solve, "events": events}
     if "solve" in sections:
-        out["solve"] = res["solve"]
+        out["solve"] = solve
     if "pivot_log" in sections:
-        out["pivot_log"] = res["pivot_log"]
+        out["pivot_log"] = pivot_log
     if "changes" in sections:
         changes = res.get("changes")
         if changes is not None:

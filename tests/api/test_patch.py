@@ -236,3 +236,43 @@ def test_hot_versions_keep_the_engine_state_for_the_next_change(app, client):
     body = resp.get_json()
     assert body["solve"]["warm"] is True and body["version"] == 3
     assert body["objective"] == pytest.approx(reference_objective(current_doc(client, mid)), rel=1e-9)
+
+
+PIVOT_FIELDS = {
+    "iteration",
+    "algorithm",
+    "leaving",
+    "entering",
+    "pivot",
+    "step",
+    "objective",
+    "primal_infeasibility",
+    "dual_infeasibility",
+    "bound_flips",
+}
+
+
+def test_pivot_log_holds_only_pivots_and_engine_events_go_to_solve(client):
+    """Every pivot_log entry has the contract's ten fields; refactorizations and reuse are solve.events."""
+    mid = new_model(client)
+    changes = [
+        {"constraints": {"cap_extra": {"terms": {"ship_press_south_market": 1}, "upper": 50}}},  # slack
+        {"constraints": {"capacity_press_north": {"upper": 69}}},  # a bound moves: cached factorization
+        {"constraints": {"cap_extra": {"upper": 20}}},  # now violated: dual pivots
+        {"variables": {"ship_press_north_cafe_b": {"cost": 1}}},  # primal pivots
+    ]
+    events = []
+    for body in changes:
+        resp = patch(client, mid, body)
+        assert resp.status_code == 200
+        result = resp.get_json()
+        for entry in result["pivot_log"]:
+            assert PIVOT_FIELDS <= set(entry), entry
+            assert "event" not in entry
+        solve = result["solve"]
+        assert len(result["pivot_log"]) + solve["log_dropped"] == solve["pivots"]
+        assert isinstance(solve["events"], list)
+        events += solve["events"]
+    # the cached factorization of the previous version was reused at least once: an event, not a pivot
+    assert any(e["event"] == "reuse" for e in events), events
+    assert all({"event", "iteration", "reason"} <= set(e) for e in events)
