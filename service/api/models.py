@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import hashlib
+import json
+import math
 import time
 import zlib
 from collections.abc import Callable
@@ -14,7 +16,15 @@ from flask import Blueprint, Response, current_app, g, request, url_for
 from service.api.auth import authenticate
 from service.api.errors import ApiError
 from service.api.schemas import EmptyQuery, IdempotencyKey, ListQuery, ModelQuery, ResultQuery
-from service.document import DocumentError, FieldError, from_document, lp_check, to_document
+from service.document import (
+    MAX_ERRORS,
+    DocumentError,
+    FieldError,
+    from_document,
+    lp_check,
+    pointer,
+    to_document,
+)
 from service.operations import ModelService, Outcome, PreconditionFailed, TooMuchContention
 from service.serialize import render_result
 from service.store import Head, ModelNotFound, op_digest, valid_model_id
@@ -68,6 +78,15 @@ def _parse_json(data: bytes) -> Any:
     try:
         value = orjson.loads(data)
     except orjson.JSONDecodeError as exc:
+        pointers = _non_finite_pointers(data)
+        if pointers:  # the usual mistake: a NaN or an Infinity written by a client's JSON encoder
+            raise ApiError(
+                400,
+                "invalid-json",
+                "The body is not valid JSON",
+                f"{pointers[0] or '/'}: NaN and Infinity are not JSON; every number must be finite",
+                errors=[{"pointer": p, "detail": "must be a finite number"} for p in pointers[:MAX_ERRORS]],
+            ) from None
         raise ApiError(
             400,
             "invalid-json",
@@ -77,6 +96,29 @@ def _parse_json(data: bytes) -> Any:
         ) from None
     _timed("parse", t)
     return value
+
+
+def _non_finite_pointers(data: bytes) -> list[str]:
+    """Pointers to NaN, Infinity or out-of-range numbers in a body that is JSON but for them.
+
+    The standard library reader accepts those literals (orjson does not); it is
+    used only to locate them for the error answer, never to accept a body.
+    """
+    try:
+        value = json.loads(data)
+    except (ValueError, RecursionError):
+        return []
+    found: list[str] = []
+    stack: list[tuple[Any, tuple[str, ...]]] = [(value, ())]
+    while stack:
+        node, path = stack.pop()
+        if isinstance(node, float) and not math.isfinite(node):
+            found.append(pointer(*path))
+        elif isinstance(node, dict):
+            stack.extend((v, (*path, str(k))) for k, v in reversed(node.items()))
+        elif isinstance(node, list):
+            stack.extend((v, (*path, str(i))) for i, v in reversed(list(enumerate(node))))
+    return found
 
 
 def _body() -> bytes:

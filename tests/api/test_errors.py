@@ -28,9 +28,15 @@ def mid(client) -> str:
 @pytest.mark.parametrize(
     "raw, pointer",
     [
-        (b'{"variables": {"x": {"cost": NaN}}}', ""),
-        (b'{"variables": {"x": {"cost": Infinity}}}', ""),
-        (b'{"variables": {"x": {"cost": 1e999}}}', ""),
+        # NaN and Infinity are not JSON, but the problem still points at the field that holds them
+        (b'{"variables": {"x": {"cost": NaN}}}', "/variables/x/cost"),
+        (b'{"variables": {"x": {"cost": Infinity}}}', "/variables/x/cost"),
+        (b'{"variables": {"x": {"cost": -Infinity}}}', "/variables/x/cost"),
+        (b'{"variables": {"x": {"cost": 1e999}}}', "/variables/x/cost"),
+        (
+            b'{"variables": {"a/b": {}}, "constraints": {"c": {"terms": {"a/b": NaN}}}}',
+            "/constraints/c/terms/a~1b",
+        ),
         (b"{not json", ""),
         (b"", ""),
         (b'{"variables": {"x": {"lower": 5, "upper": 1}}}', "/variables/x/lower"),
@@ -79,15 +85,20 @@ def test_invalid_patches_are_400_and_change_nothing(client, rclient, mid, patch_
     assert client.get(f"/v1/models/{mid}", headers=auth()).get_json()["version"] == 1
 
 
-def test_nan_in_a_patch_body_is_rejected(client, rclient, mid):
+@pytest.mark.parametrize(
+    "path, raw, pointer",
+    [
+        ("", b'{"constraints": {"demand_market": {"lower": NaN}}}', "/constraints/demand_market/lower"),
+        ("/constraints", b'{"demand_market": {"upper": Infinity}}', "/demand_market/upper"),
+        ("/variables", b'{"ship_press_north_cafe_a": {"cost": -1e400}}', "/ship_press_north_cafe_a/cost"),
+        ("", b'{"constraints": {"demand_market": {"lower": NaN', ""),  # not JSON at all: no field
+    ],
+)
+def test_nan_in_a_patch_body_is_rejected_with_a_pointer(client, rclient, mid, path, raw, pointer):
     before = snapshot(rclient)
-    resp = client.patch(
-        f"/v1/models/{mid}",
-        data=b'{"constraints": {"demand_market": {"lower": NaN}}}',
-        content_type=MERGE,
-        headers=auth(),
-    )
-    assert_problem(resp, 400)
+    resp = client.patch(f"/v1/models/{mid}{path}", data=raw, content_type=MERGE, headers=auth())
+    body = assert_problem(resp, 400)
+    assert [e["pointer"] for e in body["errors"]] == [pointer]
     assert snapshot(rclient) == before
 
 
