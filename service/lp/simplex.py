@@ -348,11 +348,19 @@ class Simplex:
         if time.perf_counter() - self.t0 > self.opt.time_limit:
             raise LimitReached("time_limit")
 
-    def log(self, record: dict) -> None:
+    def log(self, *args, **kwargs) -> None:
+        """Append a pivot record (built only when the log still has room)."""
         if len(self.pivot_log) < self.opt.log_limit:
-            self.pivot_log.append(record)
+            self.pivot_log.append(self._pivot_record(*args, **kwargs))
         else:
             self.log_dropped += 1
+
+    def _dinf_at(self, idx: np.ndarray) -> float:
+        """Sum of dual infeasibilities over some variables (see dual_infeasibilities)."""
+        st = self.status[idx]
+        d = self.d[idx]
+        inf = np.maximum(-d * _DUAL_SIGN[st], 0.0)
+        return float(inf.sum() + np.abs(d[st == FREE]).sum())
 
     def _name(self, j: int) -> str:
         return self.names[j]
@@ -360,11 +368,12 @@ class Simplex:
     def _kind(self, j: int) -> str:
         return "variable" if j < self.n else "constraint"
 
-    def _pivot_record(self, algorithm, p, leave_bound, q, pivot, step, flips, infeas=None) -> dict:
+    def _pivot_record(self, algorithm, p, leave_bound, q, pivot, step, flips, infeas=None, dinf=None) -> dict:
         if infeas is None:
             infeas = self.primal_infeasibilities()
         pinf = np.abs(infeas).sum()
-        dinf = self.dual_infeasibilities().sum()
+        if dinf is None:
+            dinf = self.dual_infeasibilities().sum()
         return {
             "iteration": self.iteration,
             "algorithm": algorithm,
@@ -528,6 +537,7 @@ class Simplex:
         trouble = 0
         self.rule_override = None
         infeas = self.primal_infeasibilities()
+        dinf_sum = float(self.dual_infeasibilities().sum())
         while True:
             self.check_limits()
             r = self._choose_row(infeas)
@@ -548,6 +558,7 @@ class Simplex:
                 if self.factor.updates > 0:
                     self.refactor("confirm_infeasibility")
                     infeas = self.primal_infeasibilities()
+                    dinf_sum = float(self.dual_infeasibilities().sum())
                     continue
                 if self._tiny_entries_could_repair(alpha_r, nz, delta):
                     raise NumericalTrouble(
@@ -571,9 +582,13 @@ class Simplex:
                     raise NumericalTrouble("unstable_pivot", f"pivot {piv:.3e} vs row entry {alpha_r[q]:.3e}")
                 self.refactor("pivot_mismatch")
                 infeas = self.primal_infeasibilities()
+                dinf_sum = float(self.dual_infeasibilities().sum())
                 continue
             trouble = 0
             s = 1.0 if delta < 0 else -1.0
+            # everything whose reduced cost or status this pivot touches (flips are in nz)
+            touched = np.append(nz, p)
+            dinf_before = self._dinf_at(touched)
             # dual update: d_j += s * t * alpha_rj; leaving variable gets s * t
             if t != 0.0:
                 self.d[nz] += (s * t) * alpha_r[nz]
@@ -600,11 +615,11 @@ class Simplex:
             self.basis_change(r, q, alpha_q, leave_status)
             self.x[p] = bound
             infeas = self.primal_infeasibilities()
-            self.log(
-                self._pivot_record(
-                    "dual", p, "lower" if delta < 0 else "upper", q, piv, theta_p, flip_idx.size, infeas
-                )
-            )
+            if self.factor.updates == 0:  # just refactorized: reduced costs recomputed
+                dinf_sum = float(self.dual_infeasibilities().sum())
+            else:
+                dinf_sum += self._dinf_at(touched) - dinf_before
+            self.log("dual", p, "lower" if delta < 0 else "upper", q, piv, theta_p, flip_idx.size, infeas, dinf_sum)
             obj = float(self.cost @ self.x)
             if obj > best_obj + 1e-13 * (1.0 + abs(obj)):  # (best_obj starts at -inf)
                 best_obj = obj
@@ -619,6 +634,7 @@ class Simplex:
                     if stalls == 1:
                         self.perturb_costs()
                         best_obj = -np.inf  # the objective is measured with new costs now
+                        dinf_sum = float(self.dual_infeasibilities().sum())
                     elif stalls == 2:
                         self.rule_override = "smallest_index"
                         self.events.append(
@@ -739,7 +755,7 @@ class Simplex:
                 self.x[self.basic_idx] -= direction * step * alpha_q
                 self.status[q] = AT_UPPER if direction > 0 else AT_LOWER
                 self.iteration += 1
-                self.log(self._pivot_record("primal", None, None, q, None, step, 1))
+                self.log("primal", None, None, q, None, step, 1)
                 continue
             piv = alpha_q[r]
             e = np.zeros(self.m)
@@ -773,11 +789,7 @@ class Simplex:
                 self.devex[p] = max(wq / piv**2, 1.0)
             self.basis_change(r, q, alpha_q, leave_status)
             self.x[p] = bound
-            self.log(
-                self._pivot_record(
-                    "primal", p, "lower" if leave_status == AT_LOWER else "upper", q, piv, step, 0
-                )
-            )
+            self.log("primal", p, "lower" if leave_status == AT_LOWER else "upper", q, piv, step, 0)
             obj = float(self.cost @ self.x)
             if obj < best_obj - 1e-13 * (1.0 + abs(obj)):  # (best_obj starts at +inf)
                 best_obj = obj
