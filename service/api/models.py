@@ -122,7 +122,17 @@ def _non_finite_pointers(data: bytes) -> list[str]:
 
 
 def _body() -> bytes:
-    return request.get_data(cache=True)
+    data = request.get_data(cache=True)
+    limit = current_app.config.get("MAX_CONTENT_LENGTH")
+    if limit is not None and request.content_length is None and len(data) >= limit and not g.get("body_ok"):
+        # A chunked body (no Content-Length) is cut at the limit without an error by werkzeug;
+        # one byte more on the server's stream means the client sent too much.
+        if request.environ["wsgi.input"].read(1):
+            raise ApiError(
+                413, "body-too-large", "Request body too large", f"the body is larger than {limit} bytes"
+            )
+        g.body_ok = True
+    return data
 
 
 def _require_media(allowed: tuple[str, ...], header: str) -> str:

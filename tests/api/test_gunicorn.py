@@ -28,7 +28,7 @@ def get(url: str, headers: dict | None = None) -> tuple[int, dict, dict]:
 
 
 @pytest.fixture
-def served(tmp_path):
+def served(tmp_path, request):
     redis_dir = tmp_path / "redis"
     redis_proc, redis_port = start_redis(redis_dir, appendonly=True)
     port = free_port()
@@ -39,6 +39,7 @@ def served(tmp_path):
         "HOTBASIS_REDIS_URL": f"redis://127.0.0.1:{redis_port}/0",
         "HOTBASIS_API_KEYS": f"acme:{KEY}",
         "HOTBASIS_WORKERS": "2",
+        **getattr(request, "param", {}),  # extra settings from an indirect parametrization
     }
     with open(log_path, "wb") as log:
         api = subprocess.Popen(
@@ -146,3 +147,40 @@ def _restart_redis(workdir: Path, port: int):
         except (redis.ConnectionError, redis.BusyLoadingError):
             time.sleep(0.05)
     pytest.fail("redis did not restart")
+
+
+BODY_LIMIT = 4096
+
+
+def post_chunked(base: str, body: bytes, chunk: int = 1000) -> tuple[int, dict]:
+    """POST a model with Transfer-Encoding: chunked (no Content-Length), as streaming clients send."""
+    import http.client
+
+    host, port = base.removeprefix("http://").split(":")
+    conn = http.client.HTTPConnection(host, int(port), timeout=30)
+    try:
+        parts = (body[k : k + chunk] for k in range(0, len(body), chunk))
+        conn.request(
+            "POST",
+            "/v1/models",
+            body=parts,
+            headers={"Authorization": f"Bearer {KEY}", "Content-Type": "application/json"},
+            encode_chunked=True,
+        )
+        resp = conn.getresponse()
+        return resp.status, json.loads(resp.read() or b"{}")
+    finally:
+        conn.close()
+
+
+@pytest.mark.parametrize("served", [{"HOTBASIS_MAX_BODY_BYTES": str(BODY_LIMIT)}], indirect=True)
+def test_chunked_body_over_the_limit_is_413_not_cut_short(served):
+    doc = b'{"variables": {"lane": {"cost": 1}}}'
+    at_limit = doc + b" " * (BODY_LIMIT - len(doc))  # whitespace is valid JSON padding
+    status, body = post_chunked(served["base"], at_limit)
+    assert status == 201, body
+    status, body = post_chunked(served["base"], at_limit + b" ")
+    assert status == 413, body
+    assert body["type"].endswith("body-too-large")
+    status, listing, _ = get(f"{served['base']}/v1/models")
+    assert listing["total"] == 1  # the refused body stored nothing
