@@ -277,6 +277,11 @@ def _constraint_bounds(con: dict, base: tuple[str, ...], errs: _Errors) -> tuple
     return (-np.inf if lo is None else lo), (np.inf if up is None else up)
 
 
+def _moved_bound(patch: dict) -> str:
+    """The bound a crossing is blamed on: the one the patch sent (lower when it sent both or neither)."""
+    return "upper" if "upper" in patch and "lower" not in patch else "lower"
+
+
 def _fmt(x: float) -> str:
     return f"{x:g}"
 
@@ -558,7 +563,9 @@ def apply_patch(lp: LinearProgram, patch: Any) -> tuple[LinearProgram, ChangeSet
                 value = _bound(vp["upper"], pointer(*base, "upper"), errs, np.inf)
                 up = up if value is None else value
             if lo > up:
-                errs.add(pointer(*base, "lower"), f"lower bound {_fmt(lo)} exceeds upper bound {_fmt(up)}")
+                errs.add(
+                    pointer(*base, _moved_bound(vp)), f"lower bound {_fmt(lo)} exceeds upper bound {_fmt(up)}"
+                )
             if cost != c[j]:
                 changes.costs.append(vname)
             if lo != col_lower[j] or up != col_upper[j]:
@@ -609,7 +616,9 @@ def apply_patch(lp: LinearProgram, patch: Any) -> tuple[LinearProgram, ChangeSet
                 value = _bound(cp["upper"], pointer(*base, "upper"), errs, np.inf)
                 up = up if value is None else value
             if lo > up:
-                errs.add(pointer(*base, "lower"), f"lower bound {_fmt(lo)} exceeds upper bound {_fmt(up)}")
+                errs.add(
+                    pointer(*base, _moved_bound(cp)), f"lower bound {_fmt(lo)} exceeds upper bound {_fmt(up)}"
+                )
             if lo != row_lower[i] or up != row_upper[i]:
                 changes.row_bounds.append(cname)
             row_lower[i], row_upper[i] = lo, up
