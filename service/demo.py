@@ -20,6 +20,7 @@ import argparse
 import json
 import os
 import sys
+import textwrap
 import urllib.error
 import urllib.request
 from typing import Any
@@ -109,6 +110,68 @@ def _num(x: float | None, width: int = 10, digits: int = 2) -> str:
     return f"{'-':>{width}}" if x is None else f"{x:>{width},.{digits}f}"
 
 
+def _amount(x: float) -> str:
+    return f"{x:,.2f}".rstrip("0").rstrip(".") if x != int(x) else f"{int(x):,}"
+
+
+def row_text(terms: dict[str, float], lower: float | None, upper: float | None) -> str:
+    """A constraint as a planner writes it: ``a + b - 2.5 c <= 40``."""
+    parts = []
+    for k, (name, coef) in enumerate(terms.items()):
+        sign = "-" if coef < 0 else "+"
+        size = "" if abs(coef) == 1 else f"{_amount(abs(coef))} "
+        if k == 0:
+            parts.append(f"{'-' if coef < 0 else ''}{size}{name}")
+        else:
+            parts.append(f"{sign} {size}{name}")
+    expr = " ".join(parts) or "0"
+    if lower is not None and upper is not None:
+        return (
+            f"{expr} = {_amount(lower)}"
+            if lower == upper
+            else f"{_amount(lower)} <= {expr} <= {_amount(upper)}"
+        )
+    if lower is not None:
+        return f"{expr} >= {_amount(lower)}"
+    if upper is not None:
+        return f"{expr} <= {_amount(upper)}"
+    return f"{expr} (free row)"
+
+
+def _bounds(lower: float | None, upper: float | None) -> str:
+    if lower is None and upper is None:
+        return "free"
+    if lower == upper:
+        return f"fixed at {_amount(lower)}"
+    if upper is None:
+        return f"{_amount(lower)} or more"
+    if lower is None:
+        return f"at most {_amount(upper)}"
+    return f"{_amount(lower)} to {_amount(upper)}"
+
+
+def print_model(doc: dict) -> None:
+    """The model as stored: each variable with its cost and bounds, each constraint as an inequality."""
+    variables, constraints = doc["variables"], doc["constraints"]
+    width = max(len(n) for n in [*variables, *constraints]) + 2
+    print(f"  {len(variables)} variables (cases a week), {doc.get('sense', 'min')}imize the weekly cost")
+    print(f"  {'variable':<{width}}{'cost/case':>10}  bounds")
+    for name, v in variables.items():
+        print(f"  {name:<{width}}{v.get('cost') or 0:>10.2f}  {_bounds(v.get('lower', 0), v.get('upper'))}")
+    print(f"  {len(constraints)} constraints")
+    for name, con in constraints.items():
+        text = row_text(con.get("terms", {}), con.get("lower"), con.get("upper"))
+        # wrap long rows between terms, never inside "- name" (a no-break space holds each sign to its term)
+        held = text.replace("+ ", "+\u00a0").replace("- ", "-\u00a0")
+        lines = textwrap.wrap(
+            held, width=max(40, 110 - width), break_long_words=False, break_on_hyphens=False
+        )
+        for k, line in enumerate(lines):
+            print(
+                f"  {name if k == 0 else '':<{width}}{'' if k == 0 else '    '}{line.replace(chr(0xA0), ' ')}"
+            )
+
+
 def print_plan(result: dict) -> None:
     rows = [
         (n, v["value"]) for n, v in result["solution"]["variables"].items() if abs(v["value"] or 0) > 1e-9
@@ -133,14 +196,19 @@ def print_pivot_log(result: dict) -> None:
     if not log:
         print("  (no pivots: the stored basis was still optimal)")
         return
+    wl = max(len("leaving"), *(len(str(e["leaving"])) for e in log))
+    we = max(len("entering"), *(len(str(e["entering"])) for e in log))
     print(
-        f"  {'#':>3} {'algorithm':<9} {'leaving':<34} {'entering':<28} {'pivot':>8} {'step':>9} {'objective':>11}"
+        f"  {'#':>3} {'algorithm':<9} {'leaving':<{wl}} {'entering':<{we}} "
+        f"{'pivot':>8} {'step':>9} {'objective':>11}"
     )
     for e in log:
         print(
-            f"  {e['iteration']:>3} {e['algorithm']:<9} {str(e['leaving']):<34} {str(e['entering']):<28} "
+            f"  {e['iteration']:>3} {e['algorithm']:<9} {str(e['leaving']):<{wl}} {str(e['entering']):<{we}} "
             f"{_num(e['pivot'], 8, 3)} {_num(e['step'], 9, 2)} {_num(e['objective'], 11, 2)}"
         )
+    print("  (leaving: left the basis; entering: took its place; pivot: the pivot element;")
+    print("   step: how far the entering one moved; objective: weekly cost after the pivot)")
 
 
 def print_changes(result: dict) -> None:
@@ -168,6 +236,9 @@ def run(base_url: str, key: str) -> dict[str, Any]:
     created, headers = api.call("POST", "/v1/models", build_model())
     model = f"/v1/models/{created['id']}"
     print(f"  POST /v1/models -> 201, Location {headers.get('Location')}, ETag {headers.get('ETag')}")
+    stored, _ = api.call("GET", model + "?fields=solve&solution=none")
+    print_model(stored["model"])
+    print("  cold solve:")
     print_solve(created)
     print_plan(created)
 

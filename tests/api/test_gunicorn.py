@@ -91,6 +91,7 @@ def test_demo_over_gunicorn_then_redis_restart_keeps_every_version(served, capsy
     assert out["cut"]["solve"]["method"] == "dual" and out["cut"]["solve"]["warm"] is True
     assert out["added"]["solve"]["method"] == "primal" and out["added"]["solve"]["warm"] is True
     assert "bridge_closure[hilltop->south_dc]" in printed and "shadow price" in printed
+    assert "deliver[north_dc->grocer_ames] + deliver[south_dc->grocer_ames] >= 420" in printed  # the model
     model_id = out["created"]["id"]
     status, body, headers = get(f"{served['base']}/v1/models/{model_id}", {"X-Request-ID": "e2e-check-1"})
     assert status == 200 and body["version"] == 3 and headers["X-Request-ID"] == "e2e-check-1"
