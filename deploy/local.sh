@@ -40,7 +40,9 @@ bootstrap() {
     say "installing the package and its test tools into .venv (pip install -e .[test])"
     # (grep drops pip's notes about index locations that this machine's pip configuration names)
     "$PY" -m pip install --quiet --disable-pip-version-check --upgrade pip 2>&1 | grep -v "is ignored: it is" || true
-    "$PY" -m pip install --quiet --disable-pip-version-check -e "$ROOT[test]" 2>&1 \
+    # (PYTHONWARNINGS: setuptools' editable-install notice about same-named folders is about this very
+    # folder, the package itself; it only alarmed readers of the bootstrap output)
+    PYTHONWARNINGS=ignore "$PY" -m pip install --quiet --disable-pip-version-check -e "$ROOT[test]" 2>&1 \
       | grep -v -e "is ignored: it is" -e "BuildBackendWarning" || true
     "$PY" -c "import service, flask, marshmallow, highspy, orjson, redis, schemathesis" \
       || die "the package did not install into .venv"
