@@ -71,7 +71,10 @@ def test_invalid_documents_are_400_with_a_pointer(client, rclient, raw, pointer)
         ({"objective_offset": "x"}, "/objective_offset"),
         ({"constraints": {"demand_market": {"lower": 10, "upper": 5}}}, "/constraints/demand_market/lower"),
         # only the upper bound was sent: the error points at it, not at the stored lower bound
-        ({"variables": {"ship_press_north_cafe_a": {"upper": -1}}}, "/variables/ship_press_north_cafe_a/upper"),
+        (
+            {"variables": {"ship_press_north_cafe_a": {"upper": -1}}},
+            "/variables/ship_press_north_cafe_a/upper",
+        ),
         ({"constraints": {"demand_market": {"upper": 5}}}, "/constraints/demand_market/upper"),
         ({"warehouses": {}}, "/warehouses"),
         ([{"op": "add"}], ""),
