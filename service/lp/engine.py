@@ -115,15 +115,19 @@ def _builtin(
     if out.status not in (OPTIMAL, INFEASIBLE, UNBOUNDED):
         return _fallback_or_error(lp, options, warm, out.status, f"stopped after {out.pivots} pivots", t)
 
-    shadow = lp.sense * out.y
-    x = out.x
+    # Only an optimum is a plan: an infeasible or unbounded answer carries its
+    # certificate (and the basis, for the next warm start), never the last
+    # basic solution, which a planner could mistake for a plan.
+    optimal = out.status == OPTIMAL
+    shadow = lp.sense * out.y if optimal else None
+    x = out.x if optimal else None
     res = SolveResult(
         status=out.status,
-        objective=lp.objective_value(x) if out.status == OPTIMAL else None,
+        objective=lp.objective_value(x) if optimal else None,
         x=x,
-        row_activity=lp.A @ x,
+        row_activity=lp.A @ x if optimal else None,
         shadow_price=shadow,
-        reduced_cost=lp.c - lp.A.T @ shadow,
+        reduced_cost=lp.c - lp.A.T @ shadow if optimal else None,
         basis=out.basis,
         method=_method_name(out.algorithms, warm),
         warm=warm,
