@@ -118,7 +118,7 @@ def read_mps_report(
         raise MpsError("MPS input has a quadratic objective; only linear programs are supported")
     lp = _from_highs_lp(hlp)
     lp.name = _model_name(data)
-    _negative_upper_rule(lp, data)
+    _bounds_in_order(lp, data)
     _restore_names(lp, data)
     return lp, warnings
 
@@ -199,14 +199,22 @@ def _model_name(data: bytes) -> str:
     return match.group(1).decode("utf-8", errors="replace").strip() if match else ""
 
 
-def _negative_upper_rule(lp: LinearProgram, data: bytes) -> None:
-    """Negative UP with no explicit lower bound: lower becomes -inf."""
-    candidates = np.flatnonzero((lp.col_lower == 0.0) & (lp.col_upper < 0.0))
-    if candidates.size == 0:
-        return
-    names = {lp.col_names[j]: j for j in candidates}
-    explicit: set[int] = set()
+def _bounds_in_order(lp: LinearProgram, data: bytes) -> None:
+    """Apply the BOUNDS section line by line, in file order, over HiGHS's reading.
+
+    The traditional rules: a column starts at [0, +inf); UP sets the upper bound
+    and, when negative with no lower bound given before, makes the lower bound
+    -inf; LO, FX, MI (lower -inf), PL (upper +inf) and FR (both infinite) apply
+    in order, so "FR then UP 10" gives (-inf, 10]. HiGHS's reader keeps lower 0
+    for a negative UP and drops an UP that follows FR; this pass restores both.
+    Only the first bound set is read (common practice).
+    """
+    index = {name: j for j, name in enumerate(lp.col_names)}
+    lower: dict[int, float] = {}
+    upper: dict[int, float] = {}
+    lower_given: set[int] = set()
     in_bounds = False
+    bound_set: str | None = None
     for raw in data.decode("utf-8", errors="replace").splitlines():
         if not raw.strip() or raw.startswith("*"):
             continue
@@ -215,17 +223,52 @@ def _negative_upper_rule(lp: LinearProgram, data: bytes) -> None:
             continue
         if not in_bounds:
             continue
-        kind = raw.split()[0].upper()
-        if kind not in ("LO", "FX", "MI", "FR", "LI", "BV"):
-            continue
-        # Free layout: third token; fixed layout: columns 15-22 (names may hold spaces).
         tokens = raw.split()
-        for cand in (tokens[2] if len(tokens) > 2 else "", raw[14:22].strip()):
-            if cand in names:
-                explicit.add(names[cand])
-    for j in candidates:
-        if j not in explicit:
-            lp.col_lower[j] = -np.inf
+        kind = tokens[0].upper()
+        # free layout: type, set, column, value; fixed layout: columns 5-12, 15-22, 25-36
+        j, set_name, value_text = None, None, None
+        if len(tokens) >= 3 and tokens[2] in index:
+            j, set_name = index[tokens[2]], tokens[1]
+            value_text = tokens[3] if len(tokens) > 3 else None
+        elif raw[14:22].strip() in index:
+            j, set_name = index[raw[14:22].strip()], raw[4:12].strip()
+            value_text = raw[24:36].strip() or None
+        if j is None:
+            continue
+        if bound_set is None:
+            bound_set = set_name
+        elif set_name != bound_set:
+            continue
+        try:
+            value = float(value_text) if value_text is not None else None
+        except ValueError:
+            continue
+        lo = lower.get(j, 0.0)
+        up = upper.get(j, np.inf)
+        if kind == "UP" and value is not None:
+            up = value
+            if value < 0 and j not in lower_given and lo == 0.0:
+                lo = -np.inf
+        elif kind == "LO" and value is not None:
+            lo = value
+            lower_given.add(j)
+        elif kind == "FX" and value is not None:
+            lo = up = value
+            lower_given.add(j)
+        elif kind == "MI":
+            lo = -np.inf
+            lower_given.add(j)
+        elif kind == "PL":
+            up = np.inf
+        elif kind == "FR":
+            lo, up = -np.inf, np.inf
+            lower_given.add(j)
+        else:
+            continue
+        lower[j], upper[j] = lo, up
+    for j, lo in lower.items():
+        lp.col_lower[j] = lo
+        lp.col_upper[j] = upper[j]
 
 
 def _restore_names(lp: LinearProgram, data: bytes) -> None:

@@ -383,3 +383,36 @@ def test_written_text_readable_by_highs_directly(tmp_path: Path):
     assert h.readModel(str(path)) == highspy.HighsStatus.kOk
     h.run()
     assert h.getInfo().objective_function_value == pytest.approx(prob.optimum, rel=1e-9)
+
+
+def test_bounds_apply_in_file_order():
+    # Traditional MPS bound semantics (applied line by line): FR then UP keeps the
+    # lower bound free; MI then UP likewise; a negative UP with no lower bound
+    # before it frees the lower bound, and a later LO sets it again.
+    text = b"""NAME ORDER
+ROWS
+ N obj
+ L c1
+COLUMNS
+ X1 obj 1 c1 1
+ X2 obj 1 c1 1
+ X3 obj -1 c1 1
+ X4 obj 1 c1 1
+RHS
+ RHS c1 100
+BOUNDS
+ FR BND X3
+ UP BND X3 10.0
+ UP BND X4 -2
+ MI BND X1
+ UP BND X1 5
+ UP BND X2 -3
+ LO BND X2 -7
+ENDATA
+"""
+    lp = read_mps(text)
+    bounds = {name: (lo, up) for name, lo, up in zip(lp.col_names, lp.col_lower, lp.col_upper)}
+    assert bounds["X3"] == (-np.inf, 10.0)
+    assert bounds["X1"] == (-np.inf, 5.0)
+    assert bounds["X4"] == (-np.inf, -2.0)
+    assert bounds["X2"] == (-7.0, -3.0)
