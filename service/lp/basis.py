@@ -136,6 +136,8 @@ def remap(
     old_col_names: list[str],
     old_row_names: list[str],
     lp: LinearProgram,
+    col_source: np.ndarray | None = None,
+    row_source: np.ndarray | None = None,
 ) -> tuple[Basis, dict]:
     """Carry a basis over to a changed model by matching names.
 
@@ -145,10 +147,20 @@ def remap(
     count of basics wrong; ``repair`` in the simplex module fixes that with a
     factorization at hand. Returns the basis and a small report.
     """
-    col_pos = {name: j for j, name in enumerate(old_col_names)}
-    row_pos = {name: i for i, name in enumerate(old_row_names)}
-    col_idx = np.array([col_pos.get(name, -1) for name in lp.col_names], dtype=np.int64)
-    row_idx = np.array([row_pos.get(name, -1) for name in lp.row_names], dtype=np.int64)
+    # col_source / row_source (new index -> old index, -1 for new) skip matching
+    # names when the caller already knows them (the document layer does)
+    if col_source is not None:
+        col_idx = np.asarray(col_source, dtype=np.int64)
+    else:
+        col_pos = {name: j for j, name in enumerate(old_col_names)}
+        col_idx = np.array([col_pos.get(name, -1) for name in lp.col_names], dtype=np.int64)
+    if row_source is not None:
+        row_idx = np.asarray(row_source, dtype=np.int64)
+    else:
+        row_pos = {name: i for i, name in enumerate(old_row_names)}
+        row_idx = np.array([row_pos.get(name, -1) for name in lp.row_names], dtype=np.int64)
+    if col_idx.shape != (lp.n,) or row_idx.shape != (lp.m,):
+        raise ValueError("index maps must have one entry per column and per row of the new model")
     col_status = nonbasic_status(lp.col_lower, lp.col_upper)
     kept = col_idx >= 0
     col_status[kept] = basis.col_status[col_idx[kept]]

@@ -226,3 +226,42 @@ def test_remap_identity():
     assert np.array_equal(out.col_status, old.col_status)
     assert np.array_equal(out.row_status, old.row_status)
     assert report == {"columns_added": 0, "rows_added": 0, "columns_removed": 0, "rows_removed": 0}
+
+
+def test_remap_with_index_maps_equals_remap_by_names():
+    """The document layer knows new -> old indices; passing them must give the same basis."""
+    old = LinearProgram(
+        A=sp.csc_matrix(np.array([[1.0, 2.0, 0.0], [0.0, 1.0, 1.0]])),
+        c=[1.0, 1.0, 1.0],
+        col_lower=[0.0, 0.0, 0.0],
+        col_upper=[INF, 5.0, INF],
+        row_lower=[-INF, 1.0],
+        row_upper=[4.0, INF],
+        col_names=["a", "b", "c"],
+        row_names=["r", "s"],
+    )
+    basis = Basis([B, 2, 1], [B, 1])
+    new = LinearProgram(  # column "a" removed, "d" added; row "t" added
+        A=sp.csc_matrix(np.array([[2.0, 0.0, 1.0], [1.0, 1.0, 0.0], [1.0, 1.0, 1.0]])),
+        c=[1.0, 1.0, 2.0],
+        col_lower=[0.0, 0.0, 0.0],
+        col_upper=[5.0, INF, 3.0],
+        row_lower=[-INF, 1.0, -INF],
+        row_upper=[4.0, INF, 9.0],
+        col_names=["b", "c", "d"],
+        row_names=["r", "s", "t"],
+    )
+    by_name, report_a = remap(basis, old.col_names, old.row_names, new)
+    by_index, report_b = remap(
+        basis,
+        old.col_names,
+        old.row_names,
+        new,
+        col_source=np.array([1, 2, -1]),
+        row_source=np.array([0, 1, -1]),
+    )
+    assert np.array_equal(by_name.col_status, by_index.col_status)
+    assert np.array_equal(by_name.row_status, by_index.row_status)
+    assert report_a == report_b
+    with pytest.raises(ValueError):
+        remap(basis, old.col_names, old.row_names, new, col_source=np.array([1, 2]))
