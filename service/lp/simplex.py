@@ -355,13 +355,6 @@ class Simplex:
         else:
             self.log_dropped += 1
 
-    def _dinf_at(self, idx: np.ndarray) -> float:
-        """Sum of dual infeasibilities over some variables (see dual_infeasibilities)."""
-        st = self.status[idx]
-        d = self.d[idx]
-        inf = np.maximum(-d * _DUAL_SIGN[st], 0.0)
-        return float(inf.sum() + np.abs(d[st == FREE]).sum())
-
     def _name(self, j: int) -> str:
         return self.names[j]
 
@@ -537,7 +530,6 @@ class Simplex:
         trouble = 0
         self.rule_override = None
         infeas = self.primal_infeasibilities()
-        dinf_sum = float(self.dual_infeasibilities().sum())
         while True:
             self.check_limits()
             r = self._choose_row(infeas)
@@ -558,7 +550,6 @@ class Simplex:
                 if self.factor.updates > 0:
                     self.refactor("confirm_infeasibility")
                     infeas = self.primal_infeasibilities()
-                    dinf_sum = float(self.dual_infeasibilities().sum())
                     continue
                 if self._tiny_entries_could_repair(alpha_r, nz, delta):
                     raise NumericalTrouble(
@@ -582,13 +573,9 @@ class Simplex:
                     raise NumericalTrouble("unstable_pivot", f"pivot {piv:.3e} vs row entry {alpha_r[q]:.3e}")
                 self.refactor("pivot_mismatch")
                 infeas = self.primal_infeasibilities()
-                dinf_sum = float(self.dual_infeasibilities().sum())
                 continue
             trouble = 0
             s = 1.0 if delta < 0 else -1.0
-            # everything whose reduced cost or status this pivot touches (flips are in nz)
-            touched = np.append(nz, p)
-            dinf_before = self._dinf_at(touched)
             # dual update: d_j += s * t * alpha_rj; leaving variable gets s * t
             if t != 0.0:
                 self.d[nz] += (s * t) * alpha_r[nz]
@@ -615,11 +602,7 @@ class Simplex:
             self.basis_change(r, q, alpha_q, leave_status)
             self.x[p] = bound
             infeas = self.primal_infeasibilities()
-            if self.factor.updates == 0:  # just refactorized: reduced costs recomputed
-                dinf_sum = float(self.dual_infeasibilities().sum())
-            else:
-                dinf_sum += self._dinf_at(touched) - dinf_before
-            self.log("dual", p, "lower" if delta < 0 else "upper", q, piv, theta_p, flip_idx.size, infeas, dinf_sum)
+            self.log("dual", p, "lower" if delta < 0 else "upper", q, piv, theta_p, flip_idx.size, infeas)
             obj = float(self.cost @ self.x)
             if obj > best_obj + 1e-13 * (1.0 + abs(obj)):  # (best_obj starts at -inf)
                 best_obj = obj
@@ -634,7 +617,6 @@ class Simplex:
                     if stalls == 1:
                         self.perturb_costs()
                         best_obj = -np.inf  # the objective is measured with new costs now
-                        dinf_sum = float(self.dual_infeasibilities().sum())
                     elif stalls == 2:
                         self.rule_override = "smallest_index"
                         self.events.append(
