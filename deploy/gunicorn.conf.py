@@ -3,17 +3,32 @@
 Environment: PORT (default 8750), HOTBASIS_BIND (overrides host:port),
 HOTBASIS_WORKERS (default 2: one per core here; the engine is CPU-bound and
 holds the GIL, so processes, not threads, give parallel solves),
-HOTBASIS_THREADS (default 4: overlap Redis and network waits within a worker).
+HOTBASIS_THREADS (default 4: overlap Redis and network waits within a worker),
+HOTBASIS_GRACEFUL_TIMEOUT (default 30 s: on SIGTERM the workers stop accepting
+connections and finish the requests in flight for up to this long),
+PROMETHEUS_MULTIPROC_DIR (where the workers' metric files go; by default a fresh
+temporary directory per server, removed when the server exits).
 """
 
 import os
+import shutil
+import tempfile
+from pathlib import Path
+
+# prometheus_client picks multiprocess mode when this variable is set at import time: set it here, in the
+# master, before any worker imports the application. A directory given from outside is emptied at start
+# (stale files from an earlier server would be added to this one's counts).
+_METRICS_DIR_OWNED = not os.environ.get("PROMETHEUS_MULTIPROC_DIR")
+if _METRICS_DIR_OWNED:
+    os.environ["PROMETHEUS_MULTIPROC_DIR"] = tempfile.mkdtemp(prefix="hotbasis-metrics-")
+METRICS_DIR = Path(os.environ["PROMETHEUS_MULTIPROC_DIR"])
 
 bind = os.environ.get("HOTBASIS_BIND", f"127.0.0.1:{os.environ.get('PORT', '8750')}")
 workers = int(os.environ.get("HOTBASIS_WORKERS", "2"))
 threads = int(os.environ.get("HOTBASIS_THREADS", "4"))
 worker_class = "gthread"
 timeout = int(os.environ.get("HOTBASIS_WORKER_TIMEOUT", "300"))  # a cold solve of a big model takes a while
-graceful_timeout = 30
+graceful_timeout = int(os.environ.get("HOTBASIS_GRACEFUL_TIMEOUT", "30"))
 keepalive = 5
 accesslog = None  # the application writes its own JSON access line per request, with the request id
 errorlog = "-"
@@ -31,3 +46,22 @@ logconfig_dict = {
         "gunicorn.access": {"handlers": ["stderr"], "level": "INFO", "propagate": False},
     },
 }
+
+
+def on_starting(server) -> None:
+    """Start the metrics directory empty."""
+    METRICS_DIR.mkdir(parents=True, exist_ok=True)
+    for stale in METRICS_DIR.glob("*.db"):
+        stale.unlink()
+
+
+def child_exit(server, worker) -> None:
+    """A worker is gone: let prometheus_client drop its live-only series (gauges); its counts stay."""
+    from prometheus_client import multiprocess
+
+    multiprocess.mark_process_dead(worker.pid, str(METRICS_DIR))
+
+
+def on_exit(server) -> None:
+    if _METRICS_DIR_OWNED:
+        shutil.rmtree(METRICS_DIR, ignore_errors=True)

@@ -14,6 +14,7 @@ from typing import Any
 
 from flask import Flask, Response, g, request
 
+from service import metrics
 from service.api import register_blueprints
 from service.api.auth import KeyRing, keys_from_env
 from service.api.errors import register_error_handlers
@@ -73,6 +74,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     register_error_handlers(app)
     register_blueprints(app)
     _register_request_hooks(app)
+    metrics.init_app(app)
     return app
 
 

@@ -20,6 +20,7 @@ from service.document import ChangeSet, apply_patch
 from service.lp.basis import Basis
 from service.lp.model import LinearProgram
 from service.lp.result import SolveOptions, SolveResult
+from service.metrics import observe_solve
 from service.serialize import change_report, moved_indices, result_record, solution_of, summary_record
 from service.store import (
     AlreadyApplied,
@@ -121,6 +122,7 @@ class ModelService:
             raise ModelExists(model_id)
         timings["store"] = time.perf_counter() - t
         self.cache.put(model_id, 1, rec, engine_state=getattr(res, "state", None))
+        observe_solve(rec.result["solve"])
         return Outcome(head, rec, created=True, timings=timings)
 
     # ---------------------------------------------------------------- changing
@@ -187,6 +189,7 @@ class ModelService:
                 return self._replay(head, done.version)
             timings["store"] = timings.get("store", 0.0) + time.perf_counter() - t
             self.cache.put(model_id, new_head.version, rec, engine_state=getattr(res, "state", None))
+            observe_solve(rec.result["solve"])  # counted once, for the solve that was stored
             return Outcome(new_head, rec, created=True, timings=timings, attempts=attempt)
         raise TooMuchContention(f"gave up after {self.max_attempts} attempts")
 
