@@ -171,14 +171,14 @@ def _text(value: Any) -> str:
 
 
 def job_queue_source(app: Flask) -> Callable[[], tuple[Any, str, str] | None]:
-    """Where the job queue lives: the store's Redis client and the stream/group named in service.jobs."""
+    """Where the job queue lives: the store's Redis client and service.jobs.STREAM / GROUP."""
 
     def source() -> tuple[Any, str, str] | None:
         try:
             from service import jobs  # the queue module; absent until jobs exist
         except ImportError:
             return None
-        stream = getattr(jobs, "STREAM_KEY", None)
+        stream = getattr(jobs, "STREAM", None)
         group = getattr(jobs, "GROUP", None)
         if not stream or not group:
             return None

@@ -162,3 +162,19 @@ def test_metrics_answer_while_redis_is_unreachable():
     app = create_app({"TESTING": True, "REDIS_URL": f"redis://127.0.0.1:{free_port()}/0", "API_KEYS": {}})
     resp = app.test_client().get("/metrics")
     assert resp.status_code == 200 and b"hotbasis_http_requests_total" in resp.data
+
+
+def test_scrape_reads_the_job_stream_named_by_the_jobs_module(client, rclient):
+    jobs = pytest.importorskip("service.jobs")  # the queue module (async jobs)
+    STREAM, GROUP = jobs.STREAM, jobs.GROUP
+
+    rclient.xgroup_create(STREAM, GROUP, id="0", mkstream=True)
+    for k in range(3):
+        rclient.xadd(STREAM, {"job": f"job-{k}"})
+    rclient.xreadgroup(GROUP, "metrics-test", {STREAM: ">"}, count=1)
+    samples = scrape(client)
+    assert value(samples, "hotbasis_job_queue_up") == 1
+    assert value(samples, "hotbasis_job_queue_length") == 3
+    assert value(samples, "hotbasis_job_queue_waiting") == 2
+    assert value(samples, "hotbasis_job_queue_pending") == 1
+    assert value(samples, "hotbasis_job_queue_oldest_age_seconds") >= 0
