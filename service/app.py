@@ -40,6 +40,8 @@ def _env_config() -> dict[str, Any]:
     env = os.environ
     return {
         "REDIS_URL": env.get("HOTBASIS_REDIS_URL", "redis://127.0.0.1:6379/0"),
+        "REDIS_TIMEOUT": float(env.get("HOTBASIS_REDIS_TIMEOUT", "3")),
+        "REDIS_CONNECT_TIMEOUT": float(env.get("HOTBASIS_REDIS_CONNECT_TIMEOUT", "2")),
         "MAX_CONTENT_LENGTH": int(env.get("HOTBASIS_MAX_BODY_BYTES", str(64 * 1024 * 1024))),
         "KEEP_VERSIONS": int(env.get("HOTBASIS_KEEP_VERSIONS", "20")),
         "CACHE_SIZE": int(env.get("HOTBASIS_CACHE_SIZE", "16")),
@@ -66,7 +68,12 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         keys = keys_from_env()
     if not keys:
         logging.getLogger("hotbasis").warning("no API keys configured: every /v1 request will be refused")
-    store = Store.from_url(app.config["REDIS_URL"], keep_versions=app.config["KEEP_VERSIONS"])
+    store = Store.from_url(
+        app.config["REDIS_URL"],
+        timeout=app.config["REDIS_TIMEOUT"],
+        connect_timeout=app.config["REDIS_CONNECT_TIMEOUT"],
+        keep_versions=app.config["KEEP_VERSIONS"],
+    )
     service = ModelService(
         store, VersionCache(app.config["CACHE_SIZE"]), SolveOptions(engine=app.config["COLD_ENGINE"])
     )

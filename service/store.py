@@ -18,6 +18,11 @@ printable, so they hold no newline), small records as JSON. Never pickle.
 Writes are compare-and-set on the model's version: WATCH the head, check the
 version the caller worked from, then MULTI/EXEC. A lost race raises
 VersionConflict and the caller re-applies its change on the new version.
+
+Redis Cluster: every transaction (and every script) touches the keys of one
+hash tag only, so one slot: a model's keys, one idempotency record, one
+tenant's rate bucket. The tenant listing is written by its own single-key
+command after the model's transaction. ``connect`` picks the client by URL.
 """
 
 from __future__ import annotations
@@ -29,10 +34,15 @@ import time
 import zlib
 from dataclasses import dataclass, field
 from typing import Any
+from urllib.parse import unquote, urlsplit
 
 import numpy as np
 import orjson
 import redis
+from redis.backoff import ExponentialBackoff
+from redis.cluster import ClusterNode, RedisCluster
+from redis.retry import Retry
+from redis.sentinel import Sentinel
 
 from service.lp.basis import Basis
 from service.lp.model import LinearProgram
@@ -239,6 +249,70 @@ def op_digest(tenant: str, key: str) -> str:
     return hashlib.sha256(tenant.encode() + b"\0" + key.encode()).hexdigest()[:32]
 
 
+# ------------------------------------------------------------------------------ connecting
+
+SOCKET_TIMEOUT = 3.0  # seconds a command may wait for Redis before the request answers 503
+CONNECT_TIMEOUT = 2.0
+CLUSTER_SCHEMES = ("redis+cluster", "rediss+cluster")
+
+
+def _retry() -> Retry:
+    # One quick retry on a dropped connection (a pooled socket that died with a restarted Redis);
+    # a timeout is not retried, so no command waits longer than its timeout.
+    return Retry(ExponentialBackoff(cap=0.05, base=0.01), 1, supported_errors=(redis.ConnectionError,))
+
+
+def _hosts(netloc: str, default_port: int) -> list[tuple[str, int]]:
+    out = []
+    for part in netloc.split(","):
+        host, _, port = part.strip().rpartition(":")
+        if not host:
+            host, port = port, ""
+        out.append((host.strip("[]"), int(port or default_port)))
+    return out
+
+
+def connect(url: str, timeout: float = SOCKET_TIMEOUT, connect_timeout: float = CONNECT_TIMEOUT) -> Any:
+    """A Redis client for ``url``, with bounded timeouts.
+
+    - ``redis://``, ``rediss://`` (TLS), ``unix://``: one server (a managed Redis, a proxy);
+    - ``redis+cluster://[user:password@]host:port[,host:port...]`` (or ``rediss+cluster``): a Redis
+      Cluster through redis-py's cluster client; the listed nodes are only where discovery starts;
+    - ``redis+sentinel://[user:password@]host:port[,host:port...]/<master name>[/<db>]``: the current
+      primary of a Sentinel-monitored group, found through the listed sentinels on every reconnect
+      (the password is the data server's; the sentinels are asked without one).
+    """
+    parsed = urlsplit(url)
+    common: dict[str, Any] = {
+        "socket_timeout": timeout,
+        "socket_connect_timeout": connect_timeout,
+        "retry": _retry(),
+    }
+    if parsed.username:
+        common["username"] = unquote(parsed.username)
+    if parsed.password:
+        common["password"] = unquote(parsed.password)
+    netloc = parsed.netloc.rpartition("@")[2]
+    if parsed.scheme in CLUSTER_SCHEMES:
+        nodes = [ClusterNode(h, p) for h, p in _hosts(netloc, 6379)]
+        return RedisCluster(
+            startup_nodes=nodes,
+            ssl=parsed.scheme.startswith("rediss"),
+            **common,
+        )
+    if parsed.scheme == "redis+sentinel":
+        parts = [p for p in parsed.path.split("/") if p]
+        if not parts:
+            raise ValueError("a sentinel URL names the monitored master: redis+sentinel://host:port/<name>")
+        db = int(parts[1]) if len(parts) > 1 else 0
+        sentinel = Sentinel(
+            _hosts(netloc, 26379),
+            sentinel_kwargs={"socket_timeout": timeout, "socket_connect_timeout": connect_timeout},
+        )
+        return sentinel.master_for(parts[0], db=db, **common)
+    return redis.Redis.from_url(url, health_check_interval=30, **common)
+
+
 # ------------------------------------------------------------------------------ the store
 
 
@@ -251,11 +325,14 @@ class Store:
         self.op_ttl = op_ttl
 
     @classmethod
-    def from_url(cls, url: str, **kwargs: Any) -> Store:
-        client = redis.Redis.from_url(
-            url, socket_timeout=10, socket_connect_timeout=5, health_check_interval=30
-        )
-        return cls(client, **kwargs)
+    def from_url(
+        cls,
+        url: str,
+        timeout: float = SOCKET_TIMEOUT,
+        connect_timeout: float = CONNECT_TIMEOUT,
+        **kwargs: Any,
+    ) -> Store:
+        return cls(connect(url, timeout, connect_timeout), **kwargs)
 
     # keys
     @staticmethod
@@ -344,7 +421,7 @@ class Store:
         record.version = 1
         record.summary["version"] = 1
         fields = encode_record(record)
-        with self.r.pipeline() as pipe:
+        with self.r.pipeline(transaction=True) as pipe:
             try:
                 pipe.watch(head_key)
                 if pipe.exists(head_key):
@@ -382,7 +459,7 @@ class Store:
         """
         head_key = self._head(model_id)
         now = record.created_at
-        with self.r.pipeline() as pipe:
+        with self.r.pipeline(transaction=True) as pipe:
             try:
                 pipe.watch(head_key)
                 raw = pipe.hgetall(head_key)
@@ -427,7 +504,7 @@ class Store:
     def delete(self, model_id: str) -> bool:
         head_key = self._head(model_id)
         while True:
-            with self.r.pipeline() as pipe:
+            with self.r.pipeline(transaction=True) as pipe:
                 try:
                     pipe.watch(head_key)
                     head = self._decode_head(model_id, pipe.hgetall(head_key))

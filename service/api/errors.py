@@ -36,6 +36,20 @@ _HTTP_SLUGS = {
 }
 
 
+# Redis unreachable, too slow, still loading its data, or (cluster, sentinel) between primaries:
+# the request changed nothing it can vouch for, and a retry after a short wait may succeed.
+STORAGE_DOWN = (
+    redis.ConnectionError,
+    redis.TimeoutError,
+    redis.BusyLoadingError,
+    redis.exceptions.ClusterDownError,
+    redis.exceptions.TryAgainError,
+    redis.exceptions.SlotNotCoveredError,
+    redis.exceptions.MasterDownError,
+    redis.exceptions.ReadOnlyError,
+)
+
+
 class ApiError(Exception):
     """An error answer: status, a problem type slug, a title, a detail and optional field errors."""
 
@@ -106,7 +120,7 @@ def register_error_handlers(app: Flask) -> None:
             return problem_response(query_error(exc))
         if isinstance(exc, HTTPException):
             return problem_response(_from_http(exc))
-        if isinstance(exc, (redis.ConnectionError, redis.TimeoutError, redis.BusyLoadingError)):
+        if isinstance(exc, STORAGE_DOWN):
             log.warning("storage unavailable: %s", exc)
             return problem_response(
                 ApiError(
