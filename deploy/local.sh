@@ -70,10 +70,10 @@ start_redis() {
     say "Redis already answers on 127.0.0.1:$REDIS_PORT"
     return
   fi
-  # AOF with fsync once a second: an acknowledged write survives a crash of the Redis process; a power
-  # loss can cost at most about the last second of writes (see DEVELOPERS.md).
+  # AOF fsynced on every write (appendfsync always): Redis answers a write only once it is on disk, so
+  # an acknowledged write survives a crash or kill -9 of Redis and a crash of the machine (DEVELOPERS.md).
   redis-server --port "$REDIS_PORT" --bind 127.0.0.1 --dir "$LOCAL/redis" \
-    --appendonly yes --appendfsync everysec --save "" \
+    --appendonly yes --appendfsync always --save "" \
     --daemonize yes --pidfile "$LOCAL/redis.pid" --logfile "$LOCAL/logs/redis.log"
   for _ in $(seq 1 100); do
     redis_ping && { say "Redis on 127.0.0.1:$REDIS_PORT (AOF under .local/redis)"; return; }
