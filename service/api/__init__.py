@@ -6,7 +6,8 @@ from flask import Flask
 
 
 def register_blueprints(app: Flask) -> None:
-    from service.api import health, models
+    from service.api import health, jobs, models
 
     app.register_blueprint(health.bp)
     app.register_blueprint(models.bp)
+    app.register_blueprint(jobs.bp)

@@ -13,6 +13,7 @@ from typing import Any
 import orjson
 from flask import Blueprint, Response, current_app, g, request, url_for
 
+from service.api import jobs
 from service.api.auth import authenticate
 from service.api.errors import ApiError
 from service.api.schemas import EmptyQuery, IdempotencyKey, ListQuery, ModelQuery, ResultQuery
@@ -235,7 +236,7 @@ def _with_idempotency(handler: Callable[[str | None, str | None], Response]) -> 
         store.idem_abort(g.tenant, key)  # nothing was applied; a retry may run it
         raise
     if 200 <= resp.status_code < 300:
-        kept = {h: resp.headers[h] for h in ("ETag", "Location") if h in resp.headers}
+        kept = {h: resp.headers[h] for h in ("ETag", "Location", "Preference-Applied") if h in resp.headers}
         store.idem_finish(g.tenant, key, fingerprint, resp.status_code, kept, resp.get_data())
     else:
         store.idem_abort(g.tenant, key)
@@ -260,6 +261,9 @@ def create_model() -> Response:
             t = time.perf_counter()
             lp = _read_mps(data)
         _timed("parse", t)
+        deferred = jobs.defer_create(lp, doc if mimetype == JSON else None, query, key)
+        if deferred is not None:  # Prefer: respond-async, or a model above the size for jobs
+            return deferred
         outcome = _service().create(g.tenant, lp, op_id=op_id, idem_key=key)
         _note(outcome)
         headers = _result_headers(outcome)
@@ -374,7 +378,7 @@ def patch_variables(model_id: str) -> Response:
 def _patch(model_id: str, section: str | None) -> Response:
     query = ResultQuery().load(request.args.to_dict())
     _require_media((MERGE_PATCH,), "Accept-Patch")
-    _head(model_id)  # 404 before anything else is looked at
+    head = _head(model_id)  # 404 before anything else is looked at
     if_match = _if_match()
 
     def work(op_id: str | None, _key: str | None) -> Response:
@@ -382,6 +386,9 @@ def _patch(model_id: str, section: str | None) -> Response:
         if section is not None:
             patch = {section: patch}
         try:
+            deferred = jobs.defer_patch(head, patch, if_match, query)
+            if deferred is not None:  # Prefer: respond-async, or a model above the size for jobs
+                return deferred
             outcome = _service().patch(g.tenant, model_id, patch, if_match=if_match, op_id=op_id)
         except DocumentError as exc:
             if section is not None:  # point into the body that was sent: the map alone

@@ -45,6 +45,7 @@ def test_every_route_is_described(app):
         if rule.endpoint == "static":
             continue
         path = rule.rule.replace("<int:number>", "{version}").replace("<model_id>", "{model_id}")
+        path = path.replace("<job_id>", "{job_id}")
         for method in rule.methods - {"HEAD", "OPTIONS"}:
             served.add((path, method))
     assert served == described
