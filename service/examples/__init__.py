@@ -1,0 +1,1 @@
+"""Runnable examples of integrating with hotbasis over HTTP."""
