@@ -121,7 +121,26 @@ def result_record(res: SolveResult, lp: LinearProgram, changes: dict[str, Any] |
         },
         "pivot_log": pivots,
         "changes": changes,
+        **_certificate(res, lp),
     }
+
+
+def _certificate(res: SolveResult, lp: LinearProgram) -> dict[str, Any]:
+    """The proof behind an infeasible (or unbounded) answer, by name, nonzeros only.
+
+    ``farkas``: row multipliers y with y'A x bounded away from every point the
+    row bounds allow (``service.lp.check.verify_farkas`` accepted it);
+    ``ray``: a direction along which the objective improves without end.
+    """
+    out: dict[str, Any] = {}
+    for key, values, names in (("farkas", res.farkas, lp.row_names), ("ray", res.ray, lp.col_names)):
+        if values is None:
+            continue
+        v = np.asarray(values, dtype=float)
+        scale = float(np.abs(v).max(initial=0.0))
+        nz = np.flatnonzero(np.abs(v) > ZERO * max(1.0, scale))
+        out[key] = {names[k]: float(v[k]) for k in nz.tolist() if math.isfinite(v[k])}
+    return {"certificate": out} if out else {}
 
 
 def summary_record(version: int, created_at: float, result: dict[str, Any], change_kind: dict | None) -> dict:
@@ -214,6 +233,10 @@ def render_result(
     }
     if res.get("message"):
         out["message"] = res["message"]
+    if res.get("certificate"):
+        out["certificate"] = res["certificate"]
+    if res.get("restored_from") is not None:
+        out["restored_from"] = res["restored_from"]
     if "solution" in sections:
         out["solution"] = solution_json(record.lp, record.solution, record.basis, solution_view, record)
     pivot_log = res["pivot_log"]
@@ -229,9 +252,14 @@ def render_result(
         changes = res.get("changes")
         if changes is not None:
             changes = dict(changes)
-            moved = changes.get("variables") or {}
-            if len(moved) > changes_limit:
-                changes["variables"] = dict(list(moved.items())[:changes_limit])
+            for key in ("variables", "shadow_prices"):  # the change report's `limit`, per list
+                moved = changes.get(key) or {}
+                if len(moved) > changes_limit:
+                    changes[key] = dict(list(moved.items())[:changes_limit])
+                    changes["truncated"] = True
+            rows = changes.get("constraints")
+            if rows and any(len(v) > changes_limit for v in rows.values()):
+                changes["constraints"] = {k: v[:changes_limit] for k, v in rows.items()}
                 changes["truncated"] = True
         out["changes"] = changes
     return out
@@ -294,6 +322,8 @@ def change_report(
             for j in np.flatnonzero(removed & (np.abs(old.x) > ZERO)).tolist():
                 if len(variables) < STORED_MOVES:
                     variables[old_lp.col_names[j]] = {"before": float(old.x[j]), "after": None}
+    binding = _binding_report(before, after_lp, after, row_src)
+    binding_truncated = binding.pop("_truncated")
     prior_obj = before.result.get("objective")
     report = {
         "model": model_changes,
@@ -304,6 +334,63 @@ def change_report(
         },
         "moved": {"variables": int(moved_cols.size), "constraints": int(moved_rows.size)},
         "variables": variables,
-        "truncated": moved_cols.size > STORED_MOVES,
+        **binding,
+        "truncated": bool(moved_cols.size > STORED_MOVES or binding_truncated),
     }
     return report, moved_cols, moved_rows
+
+
+def _binding(lp_lower: np.ndarray, lp_upper: np.ndarray, activity: np.ndarray) -> np.ndarray:
+    """Rows whose activity sits on a finite bound (common practice: 1e-9 relative)."""
+    on = np.zeros(activity.size, dtype=bool)
+    for bound in (lp_lower, lp_upper):
+        fin = np.isfinite(bound)
+        on[fin] |= np.abs(activity[fin] - bound[fin]) <= 1e-9 * (1.0 + np.abs(bound[fin]))
+    return on
+
+
+def _binding_report(
+    before: VersionRecord, after_lp: LinearProgram, after: Solution, row_src: np.ndarray
+) -> dict[str, Any]:
+    """Constraints that became or stopped being binding, and shadow prices that changed.
+
+    Compared by row through ``row_src`` (old position of each new row, -1 for
+    new rows); only when both versions have a plan. Lists are capped at
+    STORED_MOVES each; shadow prices are ordered by the size of their change.
+    """
+    old_lp, old = before.lp, before.solution
+    out: dict[str, Any] = {
+        "constraints": {"became_binding": [], "stopped_binding": []},
+        "shadow_prices": {},
+        "_truncated": False,
+    }
+    if after.row_activity is None or old.row_activity is None:
+        return out
+    now = _binding(after_lp.row_lower, after_lp.row_upper, after.row_activity)
+    was_old = _binding(old_lp.row_lower, old_lp.row_upper, old.row_activity)
+    carried = row_src >= 0
+    was = np.zeros(after_lp.m, dtype=bool)
+    was[carried] = was_old[row_src[carried]]
+    names = after_lp.row_names
+    became = np.flatnonzero(now & ~was)
+    stopped = np.flatnonzero(~now & was)
+    out["constraints"] = {
+        "became_binding": [names[i] for i in became[:STORED_MOVES].tolist()],
+        "stopped_binding": [names[i] for i in stopped[:STORED_MOVES].tolist()],
+    }
+    truncated = became.size > STORED_MOVES or stopped.size > STORED_MOVES
+    if after.shadow_price is not None and old.shadow_price is not None:
+        prior = np.full(after_lp.m, np.nan)
+        prior[carried] = old.shadow_price[row_src[carried]]
+        changed = moved_indices(after.shadow_price, prior)
+        base = np.where(np.isnan(prior), 0.0, prior)
+        order = np.argsort(-np.abs(after.shadow_price[changed] - base[changed]), kind="stable")
+        truncated |= changed.size > STORED_MOVES
+        for k in order[:STORED_MOVES].tolist():
+            i = int(changed[k])
+            out["shadow_prices"][names[i]] = {
+                "before": None if np.isnan(prior[i]) else _clean(prior[i : i + 1])[0],
+                "after": _clean(after.shadow_price[i : i + 1])[0],
+            }
+    out["_truncated"] = bool(truncated)
+    return out
