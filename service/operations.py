@@ -9,7 +9,6 @@ from __future__ import annotations
 import logging
 import random
 import time
-from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -17,10 +16,9 @@ import numpy as np
 
 from service import lp as engine
 from service.cache import VersionCache
-from service.document import ChangeSet, apply_patch
+from service.document import ChangeSet, apply_patch, to_document
 from service.lp.basis import Basis
 from service.lp.model import LinearProgram
-from service.limits import LimitBook, Limits, check_model
 from service.lp.result import SolveOptions, SolveResult
 from service.metrics import observe_solve
 from service.serialize import change_report, moved_indices, result_record, solution_of, summary_record
@@ -65,18 +63,12 @@ class ModelService:
     """Models of many tenants, kept in a Store, re-optimized by the engine."""
 
     def __init__(
-        self,
-        store: Store,
-        cache: VersionCache,
-        options: SolveOptions | None = None,
-        max_attempts: int = 64,
-        limits: Callable[[str], Limits] | None = None,
+        self, store: Store, cache: VersionCache, options: SolveOptions | None = None, max_attempts: int = 64
     ) -> None:
         self.store = store
         self.cache = cache
         self.options = options or SolveOptions()
         self.max_attempts = max_attempts
-        self.limits = limits or LimitBook(Limits())  # tenant -> its limits
 
     # ---------------------------------------------------------------- reading
     def head(self, tenant: str, model_id: str) -> Head:
@@ -106,7 +98,6 @@ class ModelService:
         retry after a crash finds the model instead of making a second one.
         """
         timings: dict[str, float] = {}
-        check_model(lp, self.limits(tenant))
         model_id = model_id_for(tenant, idem_key) if idem_key else new_model_id()
         if idem_key:
             existing = self.store.head(model_id)
@@ -142,8 +133,14 @@ class ModelService:
         patch: Any,
         if_match: list[str] | None = None,
         op_id: str | None = None,
+        extra: dict[str, Any] | None = None,
     ) -> Outcome:
         """Apply a merge patch on the latest version, re-optimize warm, commit as the next version.
+
+        ``patch`` may be a callable of the latest version's record that returns
+        the patch (re-run on each retry, for changes stated against a target
+        rather than as a delta); ``extra`` fields are stored in the result and
+        the version summary.
 
         Without ``if_match`` a lost race is retried on the newer version, so
         concurrent changes are serialized and none is lost. With ``if_match``
@@ -169,11 +166,10 @@ class ModelService:
             timings["load"] = timings.get("load", 0.0) + time.perf_counter() - t
 
             t = time.perf_counter()
-            new_lp, changes = apply_patch(prior.lp, patch)
+            new_lp, changes = apply_patch(prior.lp, patch(prior) if callable(patch) else patch)
             timings["patch"] = timings.get("patch", 0.0) + time.perf_counter() - t
             if changes.empty():
                 return Outcome(head, prior, timings=timings, attempts=attempt)
-            check_model(new_lp, self.limits(tenant))
 
             t = time.perf_counter()
             res, start_basis = self._reoptimize(prior, new_lp, changes, state)
@@ -187,6 +183,9 @@ class ModelService:
                 changes=changes,
                 moved_from=prior,
             )
+            if extra:
+                rec.result.update(extra)
+                rec.summary["changes"] = {**(rec.summary["changes"] or {}), **extra}
             try:
                 new_head = self.store.commit(model_id, head.version, rec, op_id=op_id)
             except VersionConflict:
@@ -202,6 +201,33 @@ class ModelService:
             observe_solve(rec.result["solve"])  # counted once, for the solve that was stored
             return Outcome(new_head, rec, created=True, timings=timings, attempts=attempt)
         raise TooMuchContention(f"gave up after {self.max_attempts} attempts")
+
+    def restore(
+        self,
+        tenant: str,
+        model_id: str,
+        version: int,
+        if_match: list[str] | None = None,
+        op_id: str | None = None,
+    ) -> Outcome:
+        """A new version whose document equals kept version ``version``.
+
+        The difference from the latest version is applied as a merge patch, so
+        the re-optimization is warm from the latest basis, exactly as a PATCH.
+        Raises ModelNotFound for a version that is not kept.
+        """
+        head = self.head(tenant, model_id)
+        if not head.first_version <= version <= head.version:
+            raise ModelNotFound(f"{model_id} version {version}")
+        target = to_document(self.record(head, version).lp)
+        return self.patch(
+            tenant,
+            model_id,
+            lambda prior: document_diff(to_document(prior.lp), target),
+            if_match=if_match,
+            op_id=op_id,
+            extra={"restored_from": version},
+        )
 
     def delete(self, tenant: str, model_id: str) -> None:
         self.head(tenant, model_id)
@@ -291,6 +317,33 @@ class ModelService:
             moved_cols=moved_cols,
             moved_rows=moved_rows,
         )
+
+
+def document_diff(current: dict[str, Any], target: dict[str, Any]) -> dict[str, Any]:
+    """A merge patch turning document ``current`` into ``target`` (both from ``to_document``).
+
+    Changed entries are sent whole (every field explicit; a term the target
+    lacks as null), because on bounds a patch's null means "unbounded", never
+    "keep the old value".
+    """
+    patch: dict[str, Any] = {}
+    for key in ("name", "sense", "objective_offset"):
+        if current.get(key) != target.get(key):
+            patch[key] = target.get(key)
+    for section in ("variables", "constraints"):
+        old, new = current[section], target[section]
+        part: dict[str, Any] = {name: None for name in old if name not in new}
+        for name, entry in new.items():
+            if old.get(name) == entry:
+                continue
+            entry = dict(entry)
+            if "terms" in entry:
+                dropped = {v: None for v in (old.get(name) or {}).get("terms", {}) if v not in entry["terms"]}
+                entry["terms"] = {**entry["terms"], **dropped}
+            part[name] = entry
+        if part:
+            patch[section] = part
+    return patch
 
 
 def describe(changes: ChangeSet) -> str:

@@ -124,7 +124,7 @@ def _non_finite_pointers(data: bytes) -> list[str]:
 
 def _body() -> bytes:
     data = request.get_data(cache=True)
-    limit = request.max_content_length  # the tenant's body limit (service/api/limits.py)
+    limit = current_app.config.get("MAX_CONTENT_LENGTH")
     if limit is not None and request.content_length is None and len(data) >= limit and not g.get("body_ok"):
         # A chunked body (no Content-Length) is cut at the limit without an error by werkzeug;
         # one byte more on the server's stream means the client sent too much.
@@ -276,7 +276,7 @@ def create_model() -> Response:
 def _read_mps(data: bytes):
     from service.lp.mps import MpsError, read_mps
 
-    limit = request.max_content_length or current_app.config["MAX_CONTENT_LENGTH"]
+    limit = current_app.config["MAX_CONTENT_LENGTH"]
     if data[:2] == GZIP_MAGIC:  # inflate here, with a ceiling, before the reader sees it
         inflater = zlib.decompressobj(16 + zlib.MAX_WBITS)
         try:
@@ -336,6 +336,10 @@ def list_models() -> Response:
 def get_model(model_id: str) -> Response:
     query = ModelQuery().load(request.args.to_dict())
     head = _head(model_id)
+    from service.api import toolkit  # imports this module
+
+    if toolkit.wants_mps():  # Accept: text/x-mps: the model as MPS instead of JSON
+        return toolkit.mps_response(head, _service().record(head))
     if request.if_none_match and request.if_none_match.contains(head.etag.strip('"')):
         return Response(status=304, headers={"ETag": head.etag})
     t = time.perf_counter()
