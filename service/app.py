@@ -19,6 +19,7 @@ from service.api import register_blueprints
 from service.api.auth import KeyRing, keys_from_env
 from service.api.errors import register_error_handlers
 from service.cache import VersionCache
+from service.limits import LimitBook
 from service.logs import configure_logging
 from service.lp.result import SolveOptions
 from service.operations import ModelService
@@ -74,8 +75,12 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         connect_timeout=app.config["REDIS_CONNECT_TIMEOUT"],
         keep_versions=app.config["KEEP_VERSIONS"],
     )
+    limits = app.config.get("LIMITS") or LimitBook.from_env(body_bytes=app.config["MAX_CONTENT_LENGTH"])
     service = ModelService(
-        store, VersionCache(app.config["CACHE_SIZE"]), SolveOptions(engine=app.config["COLD_ENGINE"])
+        store,
+        VersionCache(app.config["CACHE_SIZE"]),
+        SolveOptions(engine=app.config["COLD_ENGINE"]),
+        limits=limits,
     )
     app.extensions["hotbasis"] = Services(service=service, keyring=KeyRing(keys))
     register_error_handlers(app)

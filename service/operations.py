@@ -9,6 +9,7 @@ from __future__ import annotations
 import logging
 import random
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -19,6 +20,7 @@ from service.cache import VersionCache
 from service.document import ChangeSet, apply_patch, to_document
 from service.lp.basis import Basis
 from service.lp.model import LinearProgram
+from service.limits import LimitBook, Limits, check_model
 from service.lp.result import SolveOptions, SolveResult
 from service.metrics import observe_solve
 from service.serialize import change_report, moved_indices, result_record, solution_of, summary_record
@@ -63,12 +65,18 @@ class ModelService:
     """Models of many tenants, kept in a Store, re-optimized by the engine."""
 
     def __init__(
-        self, store: Store, cache: VersionCache, options: SolveOptions | None = None, max_attempts: int = 64
+        self,
+        store: Store,
+        cache: VersionCache,
+        options: SolveOptions | None = None,
+        max_attempts: int = 64,
+        limits: Callable[[str], Limits] | None = None,
     ) -> None:
         self.store = store
         self.cache = cache
         self.options = options or SolveOptions()
         self.max_attempts = max_attempts
+        self.limits = limits or LimitBook(Limits())  # tenant -> its limits
 
     # ---------------------------------------------------------------- reading
     def head(self, tenant: str, model_id: str) -> Head:
@@ -98,6 +106,7 @@ class ModelService:
         retry after a crash finds the model instead of making a second one.
         """
         timings: dict[str, float] = {}
+        check_model(lp, self.limits(tenant))
         model_id = model_id_for(tenant, idem_key) if idem_key else new_model_id()
         if idem_key:
             existing = self.store.head(model_id)
@@ -170,6 +179,7 @@ class ModelService:
             timings["patch"] = timings.get("patch", 0.0) + time.perf_counter() - t
             if changes.empty():
                 return Outcome(head, prior, timings=timings, attempts=attempt)
+            check_model(new_lp, self.limits(tenant))
 
             t = time.perf_counter()
             res, start_basis = self._reoptimize(prior, new_lp, changes, state)

@@ -10,6 +10,7 @@ legal on a cluster):
     {hb:<id>}:opt         sorted set: operation id by time, to expire entries of :ops
     {hbt:<tenant>}:models sorted set: the tenant's model ids by creation time (listing)
     {hbi:<tenant>:<digest>}:rec / :body   idempotency record and stored response body
+    {hbr:<tenant>}:bucket hash: the tenant's request token bucket (tokens, time in ms)
 
 Encodings: numpy arrays as raw little-endian buffers (explicit dtypes), the
 basis as ``Basis.to_bytes``, names as UTF-8 joined by newlines (names are
@@ -249,6 +250,39 @@ def op_digest(tenant: str, key: str) -> str:
     return hashlib.sha256(tenant.encode() + b"\0" + key.encode()).hexdigest()[:32]
 
 
+# A token bucket per tenant, refilled at ``rate`` tokens per second up to ``burst``; one request takes
+# one token. One key, one script: atomic across gunicorn workers and hosts, legal on a cluster. The
+# clock is Redis's own (TIME), so workers with drifting clocks share one notion of "now".
+TOKEN_BUCKET_LUA = """
+local rate = tonumber(ARGV[1])
+local burst = tonumber(ARGV[2])
+local t = redis.call('TIME')
+local now = tonumber(t[1]) * 1000 + math.floor(tonumber(t[2]) / 1000)
+local state = redis.call('HMGET', KEYS[1], 'tokens', 'ms')
+local tokens = tonumber(state[1])
+local last = tonumber(state[2])
+if tokens == nil or last == nil then
+  tokens = burst
+  last = now
+end
+if now > last then
+  tokens = math.min(burst, tokens + (now - last) * rate / 1000)
+  last = now
+end
+local wait = 0
+local allowed = 0
+if tokens >= 1 then
+  tokens = tokens - 1
+  allowed = 1
+else
+  wait = math.ceil((1 - tokens) * 1000 / rate)
+end
+redis.call('HSET', KEYS[1], 'tokens', tostring(tokens), 'ms', tostring(last))
+redis.call('PEXPIRE', KEYS[1], math.ceil(burst * 1000 / rate) + 1000)
+return {allowed, wait}
+"""
+
+
 # ------------------------------------------------------------------------------ connecting
 
 SOCKET_TIMEOUT = 3.0  # seconds a command may wait for Redis before the request answers 503
@@ -323,6 +357,7 @@ class Store:
         self.r = client
         self.keep = max(1, int(keep_versions))
         self.op_ttl = op_ttl
+        self._token_script: Any = None
 
     @classmethod
     def from_url(
@@ -360,8 +395,19 @@ class Store:
         tag = f"{{hbi:{tenant}:{digest}}}"
         return f"{tag}:rec", f"{tag}:body"
 
+    @staticmethod
+    def _bucket(tenant: str) -> str:
+        return f"{{hbr:{tenant}}}:bucket"
+
     def ping(self) -> bool:
         return bool(self.r.ping())
+
+    def take_token(self, tenant: str, rate: float, burst: int) -> tuple[bool, float]:
+        """Take one request token of ``tenant``: (allowed, seconds until a token is there if not)."""
+        if self._token_script is None:
+            self._token_script = self.r.register_script(TOKEN_BUCKET_LUA)
+        allowed, wait_ms = self._token_script(keys=[self._bucket(tenant)], args=[repr(rate), max(1, burst)])
+        return bool(allowed), int(wait_ms) / 1000.0
 
     # ---- reading
     def head(self, model_id: str) -> Head | None:

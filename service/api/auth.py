@@ -10,6 +10,7 @@ from collections.abc import Mapping
 
 from flask import g, request
 
+from service.api import limits
 from service.api.errors import ApiError
 
 TENANT_RE = re.compile(r"^[A-Za-z0-9_.-]{1,64}$")
@@ -83,4 +84,5 @@ def authenticate(ring: KeyRing) -> str:
             headers={"WWW-Authenticate": 'Bearer realm="hotbasis", error="invalid_token"'},
         )
     g.tenant = tenant
+    limits.enforce(tenant)  # body size and rate, per tenant
     return tenant

@@ -12,6 +12,7 @@ from marshmallow import ValidationError
 from werkzeug.exceptions import HTTPException
 
 from service.document import DocumentError
+from service.limits import ModelTooLarge
 
 PROBLEM_BASE = "urn:hotbasis:problem:"
 PROBLEM_JSON = "application/problem+json"
@@ -115,6 +116,10 @@ def register_error_handlers(app: Flask) -> None:
                 ApiError(
                     400, "invalid-document", exc.title, str(exc), errors=[e.as_dict() for e in exc.errors]
                 )
+            )
+        if isinstance(exc, ModelTooLarge):
+            return problem_response(
+                ApiError(413, "model-too-large", "Model too large", str(exc), limit=exc.limit, size=exc.size)
             )
         if isinstance(exc, ValidationError):
             return problem_response(query_error(exc))

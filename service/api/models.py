@@ -124,7 +124,7 @@ def _non_finite_pointers(data: bytes) -> list[str]:
 
 def _body() -> bytes:
     data = request.get_data(cache=True)
-    limit = current_app.config.get("MAX_CONTENT_LENGTH")
+    limit = request.max_content_length  # the tenant's body limit (service/api/limits.py)
     if limit is not None and request.content_length is None and len(data) >= limit and not g.get("body_ok"):
         # A chunked body (no Content-Length) is cut at the limit without an error by werkzeug;
         # one byte more on the server's stream means the client sent too much.
@@ -276,7 +276,7 @@ def create_model() -> Response:
 def _read_mps(data: bytes):
     from service.lp.mps import MpsError, read_mps
 
-    limit = current_app.config["MAX_CONTENT_LENGTH"]
+    limit = request.max_content_length or current_app.config["MAX_CONTENT_LENGTH"]
     if data[:2] == GZIP_MAGIC:  # inflate here, with a ceiling, before the reader sees it
         inflater = zlib.decompressobj(16 + zlib.MAX_WBITS)
         try:
