@@ -4,7 +4,7 @@ Key layout (``<id>`` is a model id; the braces are Redis Cluster hash tags,
 so every key of one model lives in one slot and a transaction over them is
 legal on a cluster):
 
-    {hb:<id>}:head        hash: tenant, version, first_version, created_at, updated_at, name
+    {hb:<id>}:head        hash: tenant, version, first_version, created_at, updated_at, name, cold_engine
     {hb:<id>}:v:<n>       hash: version n: model arrays, basis, solution arrays, result JSON, summary JSON
     {hb:<id>}:ops         hash: operation id (idempotency key digest or job id) -> version it produced
     {hb:<id>}:opt         sorted set: operation id by time, to expire entries of :ops
@@ -120,6 +120,7 @@ class Head:
     created_at: float
     updated_at: float
     name: str
+    cold_engine: str = ""  # engine of this model's cold solves; "" = the service's default
 
     @property
     def etag(self) -> str:
@@ -425,6 +426,7 @@ class Store:
             created_at=float(raw[b"created_at"]),
             updated_at=float(raw[b"updated_at"]),
             name=raw.get(b"name", b"").decode(),
+            cold_engine=raw.get(b"cold_engine", b"").decode(),
         )
 
     def load(self, model_id: str, version: int) -> VersionRecord | None:
@@ -460,7 +462,14 @@ class Store:
         return heads, total
 
     # ---- writing
-    def create(self, model_id: str, tenant: str, record: VersionRecord, op_id: str | None = None) -> Head:
+    def create(
+        self,
+        model_id: str,
+        tenant: str,
+        record: VersionRecord,
+        op_id: str | None = None,
+        cold_engine: str = "",
+    ) -> Head:
         """Store a new model as version 1; raises ModelExists if the id is taken."""
         head_key = self._head(model_id)
         now = record.created_at
@@ -483,6 +492,7 @@ class Store:
                         "created_at": repr(now),
                         "updated_at": repr(now),
                         "name": record.lp.name,
+                        "cold_engine": cold_engine,
                     },
                 )
                 if op_id:
@@ -493,7 +503,7 @@ class Store:
                 raise ModelExists(model_id) from exc
         # the listing lives in the tenant's slot, so it cannot join the transaction above
         self.r.zadd(self._index(tenant), {model_id: now})
-        return Head(model_id, tenant, 1, 1, now, now, record.lp.name)
+        return Head(model_id, tenant, 1, 1, now, now, record.lp.name, cold_engine)
 
     def commit(
         self, model_id: str, expected_version: int, record: VersionRecord, op_id: str | None = None
@@ -545,7 +555,7 @@ class Store:
                 pipe.execute()
             except redis.WatchError as exc:
                 raise VersionConflict(None) from exc
-        return Head(model_id, head.tenant, new, first, head.created_at, now, record.lp.name)
+        return Head(model_id, head.tenant, new, first, head.created_at, now, record.lp.name, head.cold_engine)
 
     def delete(self, model_id: str) -> bool:
         head_key = self._head(model_id)

@@ -44,6 +44,12 @@ class ResultQuery(Schema):
     changes_limit = fields.Integer(validate=validate.Range(min=0, max=100_000), load_default=100)
 
 
+class CreateQuery(ResultQuery):
+    """POST of a model also names the engine of its cold solves."""
+
+    cold_engine = fields.String(validate=validate.OneOf(("highs", "builtin")), load_default=None)
+
+
 class ModelQuery(ResultQuery):
     """GET of a model also names whether the document comes along."""
 
