@@ -6,6 +6,7 @@ plain values and return records, and know nothing about Flask.
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import random
 import time
@@ -98,9 +99,17 @@ class ModelService:
 
     # ---------------------------------------------------------------- creating
     def create(
-        self, tenant: str, lp: LinearProgram, op_id: str | None = None, idem_key: str | None = None
+        self,
+        tenant: str,
+        lp: LinearProgram,
+        op_id: str | None = None,
+        idem_key: str | None = None,
+        cold_engine: str | None = None,
     ) -> Outcome:
         """Cold-solve a new model and store it as version 1.
+
+        ``cold_engine`` ("highs" or "builtin"; default: the service's) solves this model's cold
+        solves, now and whenever it must be re-solved cold later; it is kept in the model's head.
 
         With an idempotency key the id is derived from (tenant, key), so a
         retry after a crash finds the model instead of making a second one.
@@ -113,13 +122,15 @@ class ModelService:
             if existing is not None and existing.tenant == tenant:
                 return Outcome(existing, self.record(existing, existing.first_version), replayed=True)
         t = time.perf_counter()
-        res = self._cold(lp, reason="new model")
+        cold_engine = cold_engine or self.options.engine
+        res = self._cold(lp, reason="new model", cold_engine=cold_engine)
         timings["solve"] = time.perf_counter() - t
         rec = self._record(lp, res, res.basis, changes=None, moved_from=None)
+        rec.result["solve"]["cold_engine"] = cold_engine
         t = time.perf_counter()
         for _ in range(3):
             try:
-                head = self.store.create(model_id, tenant, rec, op_id=op_id)
+                head = self.store.create(model_id, tenant, rec, op_id=op_id, cold_engine=cold_engine)
                 break
             except ModelExists:
                 if idem_key:
@@ -182,7 +193,8 @@ class ModelService:
             check_model(new_lp, self.limits(tenant))
 
             t = time.perf_counter()
-            res, start_basis = self._reoptimize(prior, new_lp, changes, state)
+            cold_engine = head.cold_engine or self.options.engine
+            res, start_basis = self._reoptimize(prior, new_lp, changes, state, cold_engine=cold_engine)
             timings["solve"] = timings.get("solve", 0.0) + time.perf_counter() - t
 
             t = time.perf_counter()
@@ -193,6 +205,7 @@ class ModelService:
                 changes=changes,
                 moved_from=prior,
             )
+            rec.result["solve"]["cold_engine"] = cold_engine
             if extra:
                 rec.result.update(extra)
                 rec.summary["changes"] = {**(rec.summary["changes"] or {}), **extra}
@@ -250,8 +263,13 @@ class ModelService:
         current = self.store.head(head.model_id) or head
         return Outcome(current, self.record(current, version), replayed=True)
 
-    def _cold(self, lp: LinearProgram, reason: str, fallback: dict | None = None) -> SolveResult:
-        res = engine.solve(lp, self.options)
+    def _cold(
+        self, lp: LinearProgram, reason: str, fallback: dict | None = None, cold_engine: str | None = None
+    ) -> SolveResult:
+        options = self.options
+        if cold_engine and cold_engine != options.engine:
+            options = dataclasses.replace(options, engine=cold_engine)
+        res = engine.solve(lp, options)
         if fallback is not None:
             res.fallback = fallback
             res.reason = f"cold solve: {fallback['reason']}"
@@ -260,16 +278,25 @@ class ModelService:
         return res
 
     def _reoptimize(
-        self, prior: VersionRecord, new_lp: LinearProgram, changes: ChangeSet, state: Any = None
+        self,
+        prior: VersionRecord,
+        new_lp: LinearProgram,
+        changes: ChangeSet,
+        state: Any = None,
+        cold_engine: str | None = None,
     ) -> tuple[SolveResult, Basis | None]:
         """Warm re-optimization from the stored basis carried over by name; cold if there is none.
+
+        Warm solves always run the builtin simplex, and the engine's own fallback after warm trouble
+        is always HiGHS; only a cold re-solve (no usable stored basis) uses the model's ``cold_engine``.
 
         ``state`` is the engine's in-process warm state of the prior version (from the version
         cache): the engine reuses its scaling and factorization when the change allows it.
         """
         basis = prior.basis
         if basis is None or basis.n != prior.lp.n or basis.m != prior.lp.m:
-            return self._cold(new_lp, "changed model", fallback={"reason": "no_stored_basis"}), None
+            fallback = {"reason": "no_stored_basis"}
+            return self._cold(new_lp, "changed model", fallback=fallback, cold_engine=cold_engine), None
         start, _report = engine.remap(basis, prior.lp.col_names, prior.lp.row_names, new_lp)
         try:
             res = engine.reoptimize(
@@ -277,8 +304,11 @@ class ModelService:
             )
         except Exception as exc:  # the engine failed outright: answer with a cold solve, and say so
             log.exception("warm re-optimization raised; solving cold")
-            res = self._cold(
-                new_lp, "changed model", fallback={"reason": "engine_error", "detail": str(exc)[:300]}
+            res = self._cold(  # a fallback: HiGHS, whatever the model's cold engine
+                new_lp,
+                "changed model",
+                fallback={"reason": "engine_error", "detail": str(exc)[:300]},
+                cold_engine="highs",
             )
         return res, start
 

@@ -16,7 +16,7 @@ from flask import Blueprint, Response, current_app, g, request, url_for
 from service.api import jobs
 from service.api.auth import authenticate
 from service.api.errors import ApiError
-from service.api.schemas import EmptyQuery, IdempotencyKey, ListQuery, ModelQuery, ResultQuery
+from service.api.schemas import CreateQuery, EmptyQuery, IdempotencyKey, ListQuery, ModelQuery, ResultQuery
 from service.document import (
     MAX_ERRORS,
     DocumentError,
@@ -63,6 +63,11 @@ def _json_response(obj: Any, status: int = 200, headers: dict[str, str] | None =
 
 def _not_found(model_id: str) -> ApiError:
     return ApiError(404, "model-not-found", "Model not found", f"there is no model {model_id!r} for this key")
+
+
+def _cold_engine(head: Head) -> str:
+    """The engine of the model's cold solves (models stored before the choice existed: the default)."""
+    return head.cold_engine or _service().options.engine
 
 
 def _head(model_id: str) -> Head:
@@ -248,7 +253,7 @@ def _with_idempotency(handler: Callable[[str | None, str | None], Response]) -> 
 
 @bp.post("/models")
 def create_model() -> Response:
-    query = ResultQuery().load(request.args.to_dict())
+    query = CreateQuery().load(request.args.to_dict())
     mimetype = _require_media((JSON, *MPS_TYPES), "Accept-Post")
 
     def work(op_id: str | None, key: str | None) -> Response:
@@ -264,7 +269,7 @@ def create_model() -> Response:
         deferred = jobs.defer_create(lp, doc if mimetype == JSON else None, query, key)
         if deferred is not None:  # Prefer: respond-async, or a model above the size for jobs
             return deferred
-        outcome = _service().create(g.tenant, lp, op_id=op_id, idem_key=key)
+        outcome = _service().create(g.tenant, lp, op_id=op_id, idem_key=key, cold_engine=query["cold_engine"])
         _note(outcome)
         headers = _result_headers(outcome)
         headers["Location"] = url_for("models.get_model", model_id=outcome.head.model_id)
@@ -318,6 +323,7 @@ def list_models() -> Response:
             "created_at": h.created_at,
             "updated_at": h.updated_at,
             "href": url_for("models.get_model", model_id=h.model_id),
+            "cold_engine": _cold_engine(h),
         }
         for h in heads
     ]
@@ -346,7 +352,7 @@ def get_model(model_id: str) -> Response:
     rec = _service().record(head)
     _timed("load", t)
     outcome = Outcome(head, rec)
-    body: dict[str, Any] = {"id": head.model_id, "version": head.version}
+    body: dict[str, Any] = {"id": head.model_id, "version": head.version, "cold_engine": _cold_engine(head)}
     if query["include_model"]:
         body["model"] = to_document(rec.lp)
     body["result"] = _render(outcome, query)
