@@ -128,6 +128,21 @@ start_api() {
   die "the API did not become ready on port $PORT"
 }
 
+start_workers() {  # HOTBASIS_WORKERS_ASYNC queue workers (python -m service.worker), one pid file each
+  local count="${HOTBASIS_WORKERS_ASYNC:-2}" i pidfile
+  for i in $(seq 1 "$count"); do
+    pidfile="$LOCAL/worker-$i.pid"
+    if [ -f "$pidfile" ] && kill -0 "$(cat "$pidfile")" 2>/dev/null; then
+      continue
+    fi
+    # (exec: the pid file names the worker itself, and no shell keeps this script's output open)
+    (cd "$ROOT" && HOTBASIS_REDIS_URL="redis://127.0.0.1:$REDIS_PORT/0" \
+      exec nohup "$PY" -m service.worker >>"$LOCAL/logs/worker-$i.log" 2>&1 </dev/null) &
+    echo $! > "$pidfile"
+  done
+  say "$count queue worker(s) for async jobs (logs: .local/logs/worker-*.log)"
+}
+
 stop_pidfile() {  # stop_pidfile <file> <label>
   local file="$1" label="$2"
   if [ -f "$file" ]; then
@@ -148,6 +163,7 @@ case "${1:-}" in
     start_redis
     ensure_keys
     start_api
+    start_workers
     HOTBASIS_DEMO_KEY="$DEMO_KEY" "$PY" -m service.demo --url "http://127.0.0.1:$PORT"
     say "the service keeps running: http://127.0.0.1:$PORT   (stop it with: bash deploy/local.sh down)"
     if [ -z "${HOTBASIS_API_KEYS:-}" ] && [ "${HOTBASIS_API_KEYS_FILE:-}" = "$LOCAL/api-keys" ]; then
@@ -156,6 +172,9 @@ case "${1:-}" in
     say "try: curl -s -H \"Authorization: Bearer \$KEY\" http://127.0.0.1:$PORT/v1/models"
     ;;
   down)
+    for pidfile in "$LOCAL"/worker-*.pid; do  # SIGTERM: each finishes the job in hand first
+      if [ -e "$pidfile" ]; then stop_pidfile "$pidfile" "queue worker"; fi
+    done
     stop_pidfile "$LOCAL/gunicorn.pid" "gunicorn"
     stop_pidfile "$LOCAL/redis.pid" "Redis"
     ;;
