@@ -102,6 +102,7 @@ class JobQueue:
         self.r = client
         self.ttl = int(ttl)
         self._group_ready = False
+        self._claim_cursor = "0-0"  # where the next XAUTOCLAIM scan of the pending entries starts
 
     @staticmethod
     def _job(job_id: str) -> str:
@@ -195,7 +196,13 @@ class JobQueue:
         """The next entry for ``consumer``: first one abandoned by a silent consumer, else a new one."""
         self.ensure_group()
         try:
-            claimed = self.r.xautoclaim(STREAM, GROUP, consumer, min_idle_ms, start_id="0-0", count=1)
+            # one call scans at most ten pending entries from the cursor; keeping the cursor between calls
+            # (back to 0-0 at the end) makes every entry held by a dead consumer come up in turn
+            claimed = self.r.xautoclaim(
+                STREAM, GROUP, consumer, min_idle_ms, start_id=self._claim_cursor, count=1
+            )
+            cursor = claimed[0] if claimed else b"0-0"
+            self._claim_cursor = cursor.decode() if isinstance(cursor, bytes) else str(cursor)
             entries = claimed[1] if claimed else []
             if not entries:
                 reply = self.r.xreadgroup(GROUP, consumer, {STREAM: ">"}, count=1, block=block_ms)
