@@ -21,7 +21,7 @@ import numpy as np
 import orjson
 import pytest
 import redis
-from conftest import TENANT_KEYS, auth
+from conftest import TENANT_KEYS, auth, juice_network
 
 from service.document import to_document
 from service.jobs import GROUP, STREAM
@@ -235,3 +235,42 @@ def test_sigterm_stops_an_idle_worker_promptly(workers):
     worker.send_signal(signal.SIGTERM)
     assert worker.wait(timeout=10) == 0
     assert time.monotonic() - t < 3.0
+
+
+def test_worker_waits_out_a_redis_outage_and_runs_the_next_job(tmp_path):
+    """Redis killed (-9) and restarted on its AOF: the worker keeps running and takes the next job."""
+    from storage.servers import start_single
+
+    from service.app import create_app
+
+    server = start_single(tmp_path / "redis", ["--appendonly", "yes", "--appendfsync", "always"])
+    pool = Workers(server.url, tmp_path)
+    try:
+        app = create_app(
+            {"TESTING": True, "REDIS_URL": server.url,
+             "API_KEYS": {key: tenant for tenant, key in TENANT_KEYS.items()}}
+        )  # fmt: skip
+        client = app.test_client()
+        mid = client.post("/v1/models", json=juice_network(), headers=auth()).get_json()["id"]
+        (worker,) = pool.start(1)
+        server.kill()
+        time.sleep(2.0)  # the worker's reads fail meanwhile; it backs off and retries
+        assert worker.poll() is None
+        server.start()
+        cut = {"constraints": {"lane_cap": {"terms": {"ship_press_south_market": 1}, "upper": 20}}}
+        resp = client.patch(
+            f"/v1/models/{mid}", data=orjson.dumps(cut), content_type="application/merge-patch+json",
+            headers={**auth(), "Prefer": "respond-async"},
+        )  # fmt: skip
+        assert resp.status_code == 202
+        done = wait_for(
+            lambda: (j := job_of(client, resp.headers["Location"]))["state"] == "done" and j, 30, "the job"
+        )
+        assert done["version"] == 2 and done["result"]["objective"] == pytest.approx(
+            400.0
+        )  # as test_patch.py
+        worker.send_signal(signal.SIGTERM)
+        assert worker.wait(timeout=15) == 0
+    finally:
+        pool.stop_all()
+        server.stop()
