@@ -248,33 +248,16 @@ class JobQueue:
         return int(pipe.execute()[0])
 
     def finish(self, job_id: str, version: int, status: int, location: str, result: dict[str, Any]) -> None:
-        pipe = self.r.pipeline(transaction=True)
-        pipe.hset(
-            self._job(job_id),
-            mapping={
-                "state": "done",
-                "finished_at": repr(time.time()),
-                "version": version,
-                "status": status,
-                "location": location,
-                "result": zlib.compress(orjson.dumps(result), 1),
-            },
-        )
-        pipe.expire(self._job(job_id), self.ttl)
-        pipe.delete(self._payload(job_id))
-        pipe.execute()
+        self._end(job_id, "done", {"version": version, "status": status, "location": location,
+                                   "result": zlib.compress(orjson.dumps(result), 1)})  # fmt: skip
 
     def fail(self, job_id: str, problem: dict[str, Any]) -> None:
+        self._end(job_id, "failed", {"status": problem["status"], "error": orjson.dumps(problem)})
+
+    def _end(self, job_id: str, state: str, fields: dict[str, Any]) -> None:
+        """Record the outcome, keep the record ``ttl`` seconds from now, drop the payload."""
         pipe = self.r.pipeline(transaction=True)
-        pipe.hset(
-            self._job(job_id),
-            mapping={
-                "state": "failed",
-                "finished_at": repr(time.time()),
-                "status": problem["status"],
-                "error": orjson.dumps(problem),
-            },
-        )
+        pipe.hset(self._job(job_id), mapping={"state": state, "finished_at": repr(time.time()), **fields})
         pipe.expire(self._job(job_id), self.ttl)
         pipe.delete(self._payload(job_id))
         pipe.execute()

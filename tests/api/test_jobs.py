@@ -6,32 +6,16 @@ redis-server; tests/test_worker.py runs workers as separate processes.
 
 from __future__ import annotations
 
-import orjson
 import pytest
+from api.test_patch import new_model, patch
 from conftest import TENANT_KEYS, auth, juice_network, reference_objective, snapshot
 
 from service.api.jobs import job_queue, prefers_async
 from service.jobs import STREAM
 from service.worker import Worker
 
-MERGE = "application/merge-patch+json"
 ASYNC = {"Prefer": "respond-async"}
 CUT = {"constraints": {"lane_cap_south_market": {"terms": {"ship_press_south_market": 1}, "upper": 20}}}
-
-
-def new_model(client, headers=None) -> str:
-    resp = client.post("/v1/models", json=juice_network(), headers={**auth(), **(headers or {})})
-    assert resp.status_code == 201
-    return resp.get_json()["id"]
-
-
-def patch(client, mid, body, path="", headers=None, query=""):
-    return client.patch(
-        f"/v1/models/{mid}{path}{query}",
-        data=orjson.dumps(body),
-        content_type=MERGE,
-        headers={**auth(), **(headers or {})},
-    )
 
 
 def run_jobs(app, count: int = 1) -> None:
