@@ -33,6 +33,7 @@ import redis
 
 from service.document import DocumentError, from_document
 from service.jobs import JOB_TTL, Delivery, JobQueue
+from service.limits import ModelTooLarge
 from service.operations import ModelService, Outcome, PreconditionFailed, TooMuchContention
 from service.serialize import SECTIONS, render_result
 from service.store import ModelNotFound
@@ -172,7 +173,13 @@ class Worker:
         if payload["kind"] == "create":
             lp = from_document(payload["document"])
             # the model id was fixed when the job was queued: a redelivered create finds its model
-            return self.service.create(tenant, lp, op_id=job_id, idem_key=payload["model_key"])
+            return self.service.create(
+                tenant,
+                lp,
+                op_id=job_id,
+                idem_key=payload["model_key"],
+                cold_engine=payload.get("cold_engine"),
+            )
         return self.service.patch(
             tenant, payload["model_id"], payload["patch"], if_match=payload.get("if_match"), op_id=job_id
         )
@@ -192,6 +199,9 @@ class Worker:
                 f"If-Match does not name the current version; the model is at version {exc.current.version}",
                 current_version=exc.current.version,
             )
+        if isinstance(exc, ModelTooLarge):  # the patch met a model grown by changes made meanwhile
+            return problem(job_id, 413, "model-too-large", "Model too large", str(exc),
+                           limit=exc.limit, size=exc.size)  # fmt: skip
         if isinstance(exc, ModelNotFound):
             return problem(job_id, 404, "model-not-found", "Model not found", "the model was deleted")
         if isinstance(exc, TooMuchContention):

@@ -20,6 +20,7 @@ from service.api.errors import ApiError
 from service.api.schemas import EmptyQuery
 from service.document import apply_patch
 from service.jobs import JOB_TTL, Job, JobQueue, new_job_id, valid_job_id
+from service.limits import check_model
 from service.lp.model import LinearProgram
 from service.operations import PreconditionFailed
 from service.store import Head, model_id_for
@@ -101,6 +102,7 @@ def defer_create(
     preferred = prefers_async(request.headers.get("Prefer"))
     if not preferred and not too_big(lp):
         return None
+    check_model(lp, current_app.extensions["hotbasis"].service.limits(g.tenant))  # 413 now, not in a job
     from service.document import to_document
 
     job_id = new_job_id()
@@ -110,6 +112,7 @@ def defer_create(
     payload = {
         "document": document if document is not None else to_document(lp),
         "model_key": model_key,
+        "cold_engine": query.get("cold_engine"),
         **_view(query),
     }
     job = job_queue().enqueue(g.tenant, "create", model_id_for(g.tenant, model_key), payload, job_id=job_id)
@@ -129,7 +132,10 @@ def defer_patch(head: Head, patch: Any, if_match: list[str] | None, query: dict[
         return None
     if if_match is not None and "*" not in if_match and head.etag not in if_match:
         raise PreconditionFailed(head)
-    apply_patch(prior.lp, patch)  # validation only; the worker applies it to the then-latest version
+    # validation only (the worker applies the patch to the version current when it runs): 400 or 413 now
+    new_lp, changes = apply_patch(prior.lp, patch)
+    if not changes.empty():
+        check_model(new_lp, service.limits(g.tenant))
     payload = {"patch": patch, "if_match": if_match, **_view(query)}
     job = job_queue().enqueue(g.tenant, "patch", head.model_id, payload)
     return _accepted(job, preferred)

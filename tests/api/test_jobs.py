@@ -247,3 +247,39 @@ def test_redelivered_job_after_commit_applies_once(app, client, rclient):
     assert done["state"] == "done" and done["version"] == 2
     assert versions(client, mid) == 2
     assert rclient.xlen(STREAM) == 0
+
+
+def test_model_size_limits_answer_413_before_anything_is_queued(redis_url, rclient):
+    from service.app import create_app
+    from service.limits import LimitBook, Limits
+
+    app = create_app(
+        {
+            "TESTING": True,
+            "REDIS_URL": redis_url,
+            "API_KEYS": {key: tenant for tenant, key in TENANT_KEYS.items()},
+            "LIMITS": LimitBook(Limits(rows=6, rate=0)),  # the juice network has 5 constraints
+        }
+    )
+    client = app.test_client()
+    mid = new_model(client)
+    doc = juice_network()
+    doc["constraints"]["one_more"] = {"terms": {"ship_press_north_market": 1}, "upper": 50}
+    doc["constraints"]["and_another"] = {"terms": {"ship_press_south_market": 1}, "upper": 50}
+    before = snapshot(rclient)
+    resp = client.post("/v1/models", json=doc, headers={**auth(), **ASYNC})
+    assert resp.status_code == 413 and resp.get_json()["type"].endswith("model-too-large")
+    two_rows = {k: doc["constraints"][k] for k in ("one_more", "and_another")}
+    resp = patch(client, mid, two_rows, path="/constraints", headers=ASYNC)
+    assert resp.status_code == 413
+    assert snapshot(rclient) == before
+
+
+def test_async_create_keeps_the_cold_engine_asked_for(app, client):
+    resp = client.post("/v1/models?cold_engine=builtin", json=juice_network(), headers={**auth(), **ASYNC})
+    assert resp.status_code == 202
+    run_jobs(app)
+    done = job(client, resp.headers["Location"]).get_json()
+    assert done["state"] == "done" and done["result"]["solve"]["method"] != "cold_highs"
+    got = client.get(f"/v1/models/{done['model_id']}", headers=auth()).get_json()
+    assert got["cold_engine"] == "builtin"
