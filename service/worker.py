@@ -29,8 +29,8 @@ import time
 from collections.abc import Callable
 from typing import Any
 
-import redis
 
+from service.api.errors import STORAGE_DOWN
 from service.document import DocumentError, from_document
 from service.jobs import JOB_TTL, Delivery, JobQueue
 from service.limits import ModelTooLarge
@@ -41,7 +41,9 @@ from service.store import ModelNotFound
 log = logging.getLogger("hotbasis.worker")
 
 PROBLEM_BASE = "urn:hotbasis:problem:"
-REDIS_ERRORS = (redis.ConnectionError, redis.TimeoutError, redis.BusyLoadingError)
+# Redis unreachable, failing over or read-only for a moment (the API answers 503 for the same set):
+# the job is not the problem, so it stays unacknowledged and runs again
+REDIS_ERRORS = STORAGE_DOWN
 
 
 def problem(job_id: str, status: int, slug: str, title: str, detail: str, **extra: Any) -> dict[str, Any]:
