@@ -173,19 +173,7 @@ def _fallback_or_error(
 
 
 def _finish_error(lp, options, warm, message, t0, status) -> SolveResult:
-    res = SolveResult(
-        status=status,
-        objective=None,
-        x=None,
-        row_activity=None,
-        shadow_price=None,
-        reduced_cost=None,
-        basis=None,
-        method="none",
-        warm=warm,
-        message=message,
-        reason=message,
-    )
+    res = SolveResult.without_solution(status, method="none", warm=warm, reason=message, message=message)
     res.timings["total"] = time.perf_counter() - t0
     return res
 
@@ -194,7 +182,9 @@ def _attach_check(lp: LinearProgram, res: SolveResult, options: SolveOptions) ->
     t = time.perf_counter()
     tol = options.check_tol
     if res.status == OPTIMAL:
-        res.check = verify(lp, res.x, res.row_activity, res.shadow_price, res.reduced_cost, res.basis, tol=tol)
+        res.check = verify(
+            lp, res.x, res.row_activity, res.shadow_price, res.reduced_cost, res.basis, tol=tol
+        )
     elif res.status == INFEASIBLE:
         if res.farkas is not None:
             res.check = verify_farkas(lp, res.farkas, tol=tol)
@@ -265,7 +255,9 @@ def repair_basis(lp: LinearProgram, basis: Basis) -> tuple[Basis, dict | None]:
     if repaired is not None:
         return repaired
     if m > DENSE_REPAIR_LIMIT:
-        raise SingularBasis(f"basis needs numerical repair and the model has more than {DENSE_REPAIR_LIMIT} rows")
+        raise SingularBasis(
+            f"basis needs numerical repair and the model has more than {DENSE_REPAIR_LIMIT} rows"
+        )
     struct = basic[basic < n]
     M = lp.A[:, struct].toarray() if struct.size else np.zeros((m, 0))
     norms = np.linalg.norm(M, axis=0)
@@ -299,7 +291,9 @@ def repair_basis(lp: LinearProgram, basis: Basis) -> tuple[Basis, dict | None]:
         **_repair_lists(lp, dropped, n + rows, status),
         "basic_before": int(basic.size),
     }
-    Factor(_basis_matrix(lp, np.flatnonzero(np.concatenate([out.col_status, out.row_status]) == Status.BASIC)))
+    Factor(
+        _basis_matrix(lp, np.flatnonzero(np.concatenate([out.col_status, out.row_status]) == Status.BASIC))
+    )
     return out, report
 
 

@@ -197,18 +197,8 @@ def solve_highs(lp: LinearProgram, options: SolveOptions | None = None) -> Solve
 
 
 def _empty_result(status: str, message: str) -> SolveResult:
-    return SolveResult(
-        status=status,
-        objective=None,
-        x=None,
-        row_activity=None,
-        shadow_price=None,
-        reduced_cost=None,
-        basis=None,
-        method="cold_highs",
-        warm=False,
-        reason="cold solve with HiGHS",
-        message=message,
+    return SolveResult.without_solution(
+        status, method="cold_highs", warm=False, reason="cold solve with HiGHS", message=message
     )
 
 

@@ -83,3 +83,22 @@ class SolveResult:
     ranging: Ranging | None = None
     message: str = ""
     state: Any = None  # engine's warm state for the next re-optimization (in-process only)
+
+    @classmethod
+    def without_solution(
+        cls, status: str, *, method: str, warm: bool, reason: str, message: str = ""
+    ) -> "SolveResult":
+        """A result that carries no plan (an error, a limit, or before one is attached)."""
+        return cls(
+            status=status,
+            objective=None,
+            x=None,
+            row_activity=None,
+            shadow_price=None,
+            reduced_cost=None,
+            basis=None,
+            method=method,
+            warm=warm,
+            reason=reason,
+            message=message,
+        )

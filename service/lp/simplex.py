@@ -172,7 +172,9 @@ class Simplex:
         self.rng = np.random.default_rng(20261201)
 
     @staticmethod
-    def reuse_applies(lp: LinearProgram, basis: Basis, state: EngineState | None, options: SolveOptions) -> bool:
+    def reuse_applies(
+        lp: LinearProgram, basis: Basis, state: EngineState | None, options: SolveOptions
+    ) -> bool:
         """True when ``state`` fits: the model only gained rows (costs and bounds
         may differ), the basic set is the old one plus the new rows' logicals,
         and the cached factorization is still young."""
@@ -222,15 +224,11 @@ class Simplex:
             np.minimum.at(rmin, rows, logs)
             has = np.isfinite(rmax)
             R_new[has] = np.exp2(np.round(-0.5 * (rmax[has] + rmin[has])))
-            new_block = sp.csr_matrix(
-                (A.data[~top] * S[cols] * R_new[rows], (rows, cols)), shape=(m - m0, n)
-            )
+            new_block = sp.csr_matrix((A.data[~top] * S[cols] * R_new[rows], (rows, cols)), shape=(m - m0, n))
             self.A = sp.vstack([state.A_scaled, new_block], format="csc")
             # the border: new rows over the old basic columns, in basis order
             struct = np.flatnonzero(state.basic_idx < n)
-            pick = sp.csc_matrix(
-                (np.ones(struct.size), (state.basic_idx[struct], struct)), shape=(n, m0)
-            )
+            pick = sp.csc_matrix((np.ones(struct.size), (state.basic_idx[struct], struct)), shape=(n, m0))
             C = new_block @ pick
         else:
             self.A = state.A_scaled
@@ -306,7 +304,9 @@ class Simplex:
         resid = self.times_af(self.x)
         scale = 1.0 + np.abs(rhs).max(initial=0.0)
         if not np.isfinite(xb).all() or np.abs(resid).max(initial=0.0) > 1e-6 * scale:
-            raise NumericalTrouble("inaccurate_factorization", "primal residual too large after refactorization")
+            raise NumericalTrouble(
+                "inaccurate_factorization", "primal residual too large after refactorization"
+            )
 
     def compute_dual(self) -> None:
         self.y = self.factor.btran(self.cost[self.basic_idx])
@@ -623,7 +623,9 @@ class Simplex:
                             {"event": "rule_switch", "iteration": self.iteration, "reason": "dual_stall"}
                         )
                     else:
-                        raise NumericalTrouble("stalled", "dual simplex made no progress after perturbing and Bland's rule")
+                        raise NumericalTrouble(
+                            "stalled", "dual simplex made no progress after perturbing and Bland's rule"
+                        )
 
     def _tiny_entries_could_repair(self, alpha_r: np.ndarray, nz: np.ndarray, delta: float) -> bool:
         """Entries below the pivot tolerance are skipped by the ratio test; if one
@@ -639,9 +641,7 @@ class Simplex:
         lo_free = ~np.isfinite(self.lower[nz])
         # at lower with at < 0 increases toward upper; at upper with at > 0 decreases toward lower
         risky = tiny & (
-            ((st == AT_LOWER) & (at < 0) & up_free)
-            | ((st == AT_UPPER) & (at > 0) & lo_free)
-            | (st == FREE)
+            ((st == AT_LOWER) & (at < 0) & up_free) | ((st == AT_UPPER) & (at > 0) & lo_free) | (st == FREE)
         )
         return bool(risky.any())
 
