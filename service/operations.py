@@ -297,7 +297,10 @@ class ModelService:
         if basis is None or basis.n != prior.lp.n or basis.m != prior.lp.m:
             fallback = {"reason": "no_stored_basis"}
             return self._cold(new_lp, "changed model", fallback=fallback, cold_engine=cold_engine), None
-        start, _report = engine.remap(basis, prior.lp.col_names, prior.lp.row_names, new_lp)
+        # the fast patch path knows the new -> old index maps; otherwise match names
+        start, _report = engine.remap(
+            basis, prior.lp.col_names, prior.lp.row_names, new_lp, changes.col_source, changes.row_source
+        )
         try:
             res = engine.reoptimize(
                 new_lp, start, self.options, change_summary=describe(changes), state=state
