@@ -270,6 +270,10 @@ class ModelService:
         if cold_engine and cold_engine != options.engine:
             options = dataclasses.replace(options, engine=cold_engine)
         res = engine.solve(lp, options)
+        if res.state is None and res.status == "optimal":
+            # HiGHS hands back a basis but no factorization: build one now, so the
+            # model's first change skips scaling and refactorizing
+            res.state = engine.warm_state(lp, res.basis, self.options)
         if fallback is not None:
             res.fallback = fallback
             res.reason = f"cold solve: {fallback['reason']}"

@@ -33,6 +33,7 @@ __all__ = [
     "slack_basis",
     "solve",
     "reoptimize",
+    "warm_state",
 ]
 
 
@@ -40,6 +41,12 @@ def solve(lp, options=None):
     from .engine import solve as _solve
 
     return _solve(lp, options)
+
+
+def warm_state(lp, basis, options=None):
+    from .engine import warm_state as _warm_state
+
+    return _warm_state(lp, basis, options)
 
 
 def reoptimize(lp, basis, options=None, **kwargs):

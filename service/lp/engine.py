@@ -61,6 +61,24 @@ def reoptimize(
     return _builtin(lp, basis, options, warm=True, reason=reason, state=state, repair=True)
 
 
+def warm_state(lp: LinearProgram, basis: Basis | None, options: SolveOptions | None = None):
+    """Scaling and factorization of ``basis`` for the next ``reoptimize(..., state=)``.
+
+    A cold HiGHS solve hands back a basis but no factorization; building one
+    here (once, right after the cold solve) lets the first change to the model
+    skip scaling and refactorizing. Returns None when the basis cannot be used.
+    """
+    options = options or SolveOptions()
+    if basis is None or basis.n != lp.n or basis.m != lp.m:
+        return None
+    try:
+        sim = Simplex(lp, normalize_nonbasic(basis, lp), options)
+        sim.refactor("initial")
+    except (SingularBasis, NumericalTrouble, ValueError):
+        return None
+    return sim.snapshot()
+
+
 # --------------------------------------------------------------------------- internals
 def _highs(lp: LinearProgram, options: SolveOptions, fallback: dict | None) -> SolveResult:
     t = time.perf_counter()

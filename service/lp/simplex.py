@@ -846,6 +846,10 @@ class Simplex:
             raise NumericalTrouble("perturbation_left", "could not remove perturbations")
         return self._outcome(status)
 
+    def snapshot(self) -> EngineState:
+        """The state a later solve of this model can reuse (see reuse_applies)."""
+        return EngineState(self.lp.A, self.sc, self.A, self.basic_idx.copy(), self.factor)
+
     def _outcome(self, status: str) -> SimplexOutcome:
         n = self.n
         S, R = self.sc.col, self.sc.row
@@ -866,7 +870,7 @@ class Simplex:
             log_dropped=self.log_dropped,
             events=self.events,
             timings=self.timings,
-            state=EngineState(self.lp.A, self.sc, self.A, self.basic_idx.copy(), self.factor),
+            state=self.snapshot(),
         )
         if status == "infeasible":
             out.farkas = self.farkas_rho * R

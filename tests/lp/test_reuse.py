@@ -73,3 +73,24 @@ def test_reuse_is_refused_when_columns_were_added():
     changed = profitable_column(lp, res, np.random.default_rng(1))
     basis, _ = remap(res.basis, lp.col_names, lp.row_names, changed)
     assert not Simplex.reuse_applies(changed, basis, res.state, SolveOptions())
+
+
+@pytest.mark.parametrize("name", ["afiro", "sc105", "scfxm1", "israel"])
+def test_warm_state_after_a_cold_highs_solve(name):
+    """HiGHS returns no factorization; warm_state builds one so the first change reuses it."""
+    from service.lp import warm_state
+
+    problem = next(p for p in PROBLEMS if p.name == name)
+    lp = read_mps(problem.path)
+    cold = solve(lp)  # HiGHS
+    assert cold.state is None
+    state = warm_state(lp, cold.basis)
+    assert state is not None
+    changed = one_cut(lp, cold, np.random.default_rng(zlib.crc32(name.encode())))
+    basis, _ = remap(cold.basis, lp.col_names, lp.row_names, changed)
+    out = reoptimize(changed, basis, SolveOptions(), state=state)
+    ref = solve(changed)  # reference: cold HiGHS
+    assert _reused(out)
+    assert out.status == ref.status
+    if ref.status == "optimal":
+        assert abs(out.objective - ref.objective) <= 1e-6 * max(1.0, abs(ref.objective))
