@@ -439,25 +439,27 @@ class Simplex:
             return int(cand[np.argmax(np.abs(infeas[cand]))])
         return int(cand[np.argmax(infeas[cand] ** 2 / self.dse[cand])])
 
-    def _dual_ratio_test(self, r: int, alpha_r: np.ndarray, nz: np.ndarray, delta: float):
+    def _dual_ratio_test(self, r: int, alpha_r: np.ndarray, delta: float):
         """Harris two-pass ratio test with bound flipping.
 
         Returns (q, t, flips) with q = -1 when no column can enter.
         The step t keeps every reduced cost dual feasible (within tolerance).
         """
         s = 1.0 if delta < 0 else -1.0
-        st = self.status[nz]  # nz: nonzeros of the pivot row, usually few
-        at = s * alpha_r[nz]
+        st_all = self.status
         ptol = self.opt.pivot_tol
-        lower_ok = (st == AT_LOWER) & (at < -ptol)
-        upper_ok = (st == AT_UPPER) & (at > ptol)
-        free_ok = (st == FREE) & (np.abs(at) > ptol)
-        sel = np.flatnonzero(lower_ok | upper_ok | free_ok)
-        if sel.size == 0:
+        # candidates straight from whole-vector masks (the pivot row is often
+        # dense: extracting its nonzeros first costs more than it saves)
+        if s > 0:
+            mask = ((st_all == AT_LOWER) & (alpha_r < -ptol)) | ((st_all == AT_UPPER) & (alpha_r > ptol))
+        else:
+            mask = ((st_all == AT_LOWER) & (alpha_r > ptol)) | ((st_all == AT_UPPER) & (alpha_r < -ptol))
+        mask |= (st_all == FREE) & (np.abs(alpha_r) > ptol)
+        cand = np.flatnonzero(mask)
+        if cand.size == 0:
             return -1, 0.0, np.zeros(0, dtype=np.int64)
-        cand = nz[sel]
-        at = at[sel]
-        st = st[sel]
+        at = s * alpha_r[cand]
+        st = st_all[cand]
         a_abs = np.abs(at)
         dj = self.d[cand]
         # sign-adjusted reduced cost (>= -tol for a dual feasible basis)
@@ -544,14 +546,13 @@ class Simplex:
                 self.dse[r] = max(float(rho @ rho), 1e-12)
             alpha_r = self.row_product(rho)
             alpha_r[self.basic_idx] = 0.0
-            nz = np.flatnonzero(alpha_r)
-            q, t, flip_idx = self._dual_ratio_test(r, alpha_r, nz, delta)
+            q, t, flip_idx = self._dual_ratio_test(r, alpha_r, delta)
             if q < 0:
                 if self.factor.updates > 0:
                     self.refactor("confirm_infeasibility")
                     infeas = self.primal_infeasibilities()
                     continue
-                if self._tiny_entries_could_repair(alpha_r, nz, delta):
+                if self._tiny_entries_could_repair(alpha_r, np.flatnonzero(alpha_r), delta):
                     raise NumericalTrouble(
                         "unproven_infeasibility",
                         "only pivot-row entries below the pivot tolerance could repair the row",
@@ -578,7 +579,7 @@ class Simplex:
             s = 1.0 if delta < 0 else -1.0
             # dual update: d_j += s * t * alpha_rj; leaving variable gets s * t
             if t != 0.0:
-                self.d[nz] += (s * t) * alpha_r[nz]
+                self.d += (s * t) * alpha_r  # basics have alpha_r = 0
                 self.y -= (s * t) * rho
             self.d[q] = 0.0
             self.d[p] = s * t
