@@ -386,11 +386,9 @@ def _binding_report(
         base = np.where(np.isnan(prior), 0.0, prior)
         order = np.argsort(-np.abs(after.shadow_price[changed] - base[changed]), kind="stable")
         truncated |= changed.size > STORED_MOVES
-        for k in order[:STORED_MOVES].tolist():
-            i = int(changed[k])
-            out["shadow_prices"][names[i]] = {
-                "before": None if np.isnan(prior[i]) else _clean(prior[i : i + 1])[0],
-                "after": _clean(after.shadow_price[i : i + 1])[0],
-            }
+        pick = changed[order[:STORED_MOVES]]
+        # one vectorized clean for each side (a new row's missing "before" becomes None)
+        for i, b, a in zip(pick.tolist(), _clean(prior[pick]), _clean(after.shadow_price[pick])):
+            out["shadow_prices"][names[i]] = {"before": b, "after": a}
     out["_truncated"] = bool(truncated)
     return out
