@@ -21,14 +21,18 @@ def free_port() -> int:
         return s.getsockname()[1]
 
 
-def start_redis(workdir: Path, appendonly: bool = False) -> tuple[subprocess.Popen, int]:
-    """Start redis-server on a free loopback port with its files under ``workdir``."""
+def start_redis(
+    workdir: Path, appendonly: bool = False, port: int | None = None
+) -> tuple[subprocess.Popen, int]:
+    """Start redis-server with its files under ``workdir`` on a free loopback port,
+    or on ``port`` to restart a stopped server where its clients expect it."""
     binary = os.environ.get("HOTBASIS_REDIS_SERVER") or shutil.which("redis-server")
     if not binary:
         pytest.fail("redis-server is not installed; `bash deploy/local.sh test` installs it (apt-get)")
     workdir.mkdir(parents=True, exist_ok=True)
-    for _ in range(5):
-        port = free_port()
+    fixed_port = port
+    for _ in range(1 if fixed_port else 5):
+        port = fixed_port or free_port()
         args = [
             binary,
             "--port",
@@ -53,11 +57,11 @@ def start_redis(workdir: Path, appendonly: bool = False) -> tuple[subprocess.Pop
             try:
                 client.ping()
                 return proc, port
-            except redis.ConnectionError:
+            except (redis.ConnectionError, redis.BusyLoadingError):  # still loading its AOF
                 time.sleep(0.05)
         proc.kill()
         proc.wait()
-    pytest.fail("could not start redis-server on a free port")
+    pytest.fail(f"could not start redis-server on {'port %d' % fixed_port if fixed_port else 'a free port'}")
 
 
 def stop_redis(proc: subprocess.Popen) -> None:

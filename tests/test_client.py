@@ -2,10 +2,9 @@
 
 from __future__ import annotations
 
-import time
 
 import pytest
-from conftest import free_port, juice_network, reference_objective, stop_redis
+from conftest import free_port, juice_network, reference_objective, start_redis, stop_redis
 from live_service import start_service, stop_service
 
 from service.client import HotbasisClient, ProblemError, RetryPolicy, ServiceUnreachable
@@ -119,22 +118,4 @@ def test_503_with_retry_after_is_retried_until_storage_is_back(live, hb):
 
 def start_redis_on(workdir, port):
     """Restart redis-server on its old port and directory (same AOF), so the service reconnects."""
-    import shutil
-    import subprocess
-
-    import redis
-
-    proc = subprocess.Popen(
-        [shutil.which("redis-server"), "--port", str(port), "--bind", "127.0.0.1", "--dir", str(workdir),
-         "--save", "", "--appendonly", "yes", "--daemonize", "no", "--loglevel", "warning"],
-        stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
-    )  # fmt: skip
-    client = redis.Redis(host="127.0.0.1", port=port)
-    deadline = time.monotonic() + 10
-    while time.monotonic() < deadline:
-        try:
-            client.ping()
-            return proc, port
-        except (redis.ConnectionError, redis.BusyLoadingError):
-            time.sleep(0.05)
-    pytest.fail("redis did not restart")
+    return start_redis(workdir, appendonly=True, port=port)

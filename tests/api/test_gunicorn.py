@@ -118,36 +118,7 @@ def test_demo_over_gunicorn_then_redis_restart_keeps_every_version(served, capsy
 
 
 def _restart_redis(workdir: Path, port: int):
-    import shutil
-
-    import redis
-
-    args = [
-        shutil.which("redis-server"),
-        "--port",
-        str(port),
-        "--bind",
-        "127.0.0.1",
-        "--dir",
-        str(workdir),
-        "--save",
-        "",
-        "--appendonly",
-        "yes",
-        "--daemonize",
-        "no",
-        "--loglevel",
-        "warning",
-    ]
-    proc = subprocess.Popen(args, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    client = redis.Redis(host="127.0.0.1", port=port)
-    for _ in range(100):
-        try:
-            client.ping()
-            return proc, port
-        except (redis.ConnectionError, redis.BusyLoadingError):
-            time.sleep(0.05)
-    pytest.fail("redis did not restart")
+    return start_redis(workdir, appendonly=True, port=port)
 
 
 BODY_LIMIT = 4096
