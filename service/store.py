@@ -226,6 +226,31 @@ def decode_record(f: dict[bytes, bytes]) -> VersionRecord:
     )
 
 
+# The model's large arrays rarely all change between versions (a new row leaves
+# costs, column bounds and names as they were), so they are stored once per
+# model as content-addressed blobs, counted by the versions that use them; a
+# version keeps only their digests under "ref.<field>".
+BLOB_FIELDS = (
+    "lp.indptr", "lp.indices", "lp.data", "lp.c", "lp.col_lower", "lp.col_upper",
+    "lp.row_lower", "lp.row_upper", "lp.col_names", "lp.row_names",
+)  # fmt: skip
+REF = "ref."
+
+
+def split_blobs(fields: dict[str, bytes]) -> tuple[dict[str, bytes], dict[str, bytes]]:
+    """A version's fields with the large arrays replaced by digests, and the blobs by digest."""
+    inline = dict(fields)
+    blobs: dict[str, bytes] = {}
+    for name in BLOB_FIELDS:
+        data = inline.pop(name, None)
+        if data is None:
+            continue
+        digest = hashlib.blake2b(data, digest_size=16).hexdigest()
+        inline[REF + name] = digest.encode()
+        blobs[digest] = data
+    return inline, blobs
+
+
 # ------------------------------------------------------------------------------ ids
 
 
@@ -388,6 +413,54 @@ class Store:
         return f"{{hb:{mid}}}:opt"
 
     @staticmethod
+    def _blob(mid: str, digest: str) -> str:
+        return f"{{hb:{mid}}}:blob:{digest}"
+
+    @staticmethod
+    def _blobrefs(mid: str) -> str:
+        return f"{{hb:{mid}}}:blobrefs"
+
+    def _version_refs(self, pipe: Any, mid: str, version: int) -> set[str]:
+        vals = pipe.hmget(self._ver(mid, version), [REF + name for name in BLOB_FIELDS])
+        return {v.decode() for v in vals if v}
+
+    def _plan_blobs(
+        self, pipe: Any, mid: str, blobs: dict[str, bytes], dropped: list[set[str]]
+    ) -> list[tuple[str, Any]]:
+        """Blob writes for a version that uses ``blobs`` while versions using ``dropped`` go.
+
+        Read before MULTI (under the head's WATCH, which every writer of this
+        model takes, so the counts cannot move underneath); returns the commands
+        to queue inside the transaction.
+        """
+        involved = sorted(set(blobs).union(*dropped)) if (blobs or dropped) else []
+        if not involved:
+            return []
+        counts = {d: int(c or 0) for d, c in zip(involved, pipe.hmget(self._blobrefs(mid), involved))}
+        after = dict(counts)
+        for d in blobs:
+            after[d] += 1
+        for refs in dropped:
+            for d in refs:
+                after[d] -= 1
+        ops: list[tuple[str, Any]] = []
+        for d in involved:
+            if after[d] > 0:
+                if counts[d] == 0:
+                    ops.append(("set", (self._blob(mid, d), blobs[d])))
+                if after[d] != counts[d]:
+                    ops.append(("hset", (self._blobrefs(mid), d, after[d])))
+            else:
+                ops.append(("hdel", (self._blobrefs(mid), d)))
+                ops.append(("delete", (self._blob(mid, d),)))
+        return ops
+
+    @staticmethod
+    def _queue(pipe: Any, ops: list[tuple[str, Any]]) -> None:
+        for name, args in ops:
+            getattr(pipe, name)(*args)
+
+    @staticmethod
     def _index(tenant: str) -> str:
         return f"{{hbt:{tenant}}}:models"
 
@@ -431,7 +504,16 @@ class Store:
 
     def load(self, model_id: str, version: int) -> VersionRecord | None:
         raw = self.r.hgetall(self._ver(model_id, version))
-        return decode_record(raw) if raw else None
+        if not raw:
+            return None
+        refs = [(k, v.decode()) for k, v in raw.items() if k.startswith(REF.encode())]
+        if refs:
+            blobs = self.r.mget([self._blob(model_id, d) for _, d in refs])
+            for (key, digest), data in zip(refs, blobs):
+                if data is None:
+                    raise ValueError(f"model {model_id} version {version}: blob {digest} is missing")
+                raw[key[len(REF) :]] = data
+        return decode_record(raw)
 
     def summaries(self, head: Head) -> list[dict[str, Any]]:
         """Summary of every kept version, oldest first."""
@@ -475,13 +557,15 @@ class Store:
         now = record.created_at
         record.version = 1
         record.summary["version"] = 1
-        fields = encode_record(record)
+        fields, blobs = split_blobs(encode_record(record))
         with self.r.pipeline(transaction=True) as pipe:
             try:
                 pipe.watch(head_key)
                 if pipe.exists(head_key):
                     raise ModelExists(model_id)
+                blob_ops = self._plan_blobs(pipe, model_id, blobs, [])
                 pipe.multi()
+                self._queue(pipe, blob_ops)
                 pipe.hset(self._ver(model_id, 1), mapping=fields)
                 pipe.hset(
                     head_key,
@@ -533,8 +617,14 @@ class Store:
                 record.summary["version"] = new  # the store, not the caller, numbers versions
                 first = max(head.first_version, new - self.keep + 1)
                 stale_ops = pipe.zrangebyscore(self._opt(model_id), "-inf", now - self.op_ttl)
+                fields, blobs = split_blobs(encode_record(record))
+                dropped = [
+                    self._version_refs(pipe, model_id, old) for old in range(head.first_version, first)
+                ]
+                blob_ops = self._plan_blobs(pipe, model_id, blobs, dropped)
                 pipe.multi()
-                pipe.hset(self._ver(model_id, new), mapping=encode_record(record))
+                self._queue(pipe, blob_ops)
+                pipe.hset(self._ver(model_id, new), mapping=fields)
                 pipe.hset(
                     head_key,
                     mapping={
@@ -566,8 +656,10 @@ class Store:
                     head = self._decode_head(model_id, pipe.hgetall(head_key))
                     if head is None:
                         return False
+                    digests = [d.decode() for d in pipe.hkeys(self._blobrefs(model_id))]
                     pipe.multi()
                     keys = [self._ver(model_id, n) for n in range(head.first_version, head.version + 1)]
+                    keys += [self._blob(model_id, d) for d in digests] + [self._blobrefs(model_id)]
                     pipe.delete(head_key, self._ops(model_id), self._opt(model_id), *keys)
                     pipe.execute()
                 except redis.WatchError:

@@ -70,9 +70,12 @@ def test_encoding_is_raw_buffers_not_pickle(store, rclient):
     lp = from_document(DOC)
     store.create("aaaaaaaaaaaaaaaa", "acme", record(lp))
     raw = rclient.hgetall("{hb:aaaaaaaaaaaaaaaa}:v:1")
-    assert raw[b"lp.c"] == np.array([3, 2, 0], dtype="<f8").tobytes()
+    # the model's large arrays are content-addressed blobs the version refers to
+    costs = rclient.get(b"{hb:aaaaaaaaaaaaaaaa}:blob:" + raw[b"ref.lp.c"])
+    assert costs == np.array([3, 2, 0], dtype="<f8").tobytes()
     assert raw[b"basis"][:4] == b"HBB1"
-    assert all(not value.startswith(b"\x80") for value in raw.values())  # pickle protocol 2+ marker
+    blobs = [rclient.get(k) for k in rclient.keys("{hb:aaaaaaaaaaaaaaaa}:blob:*")]
+    assert all(not value.startswith(b"\x80") for value in [*raw.values(), *blobs])  # pickle 2+ marker
 
 
 def test_create_load_and_keys_share_one_hash_tag(store, rclient):
@@ -195,3 +198,58 @@ def test_idempotency_records(store):
     assert store.idem_begin("globex", "key-1", "fp") is None
     assert model_id_for("acme", "k") == model_id_for("acme", "k") != model_id_for("globex", "k")
     assert valid_model_id(model_id_for("acme", "k"))
+
+
+def _blob_keys(rclient, mid: str) -> set[bytes]:
+    return set(rclient.keys(f"{{hb:{mid}}}:blob:*"))
+
+
+def _expected_refcounts(rclient, store, mid: str) -> dict[bytes, int]:
+    head = store.head(mid)
+    counts: dict[bytes, int] = {}
+    for n in range(head.first_version, head.version + 1):
+        raw = rclient.hgetall(f"{{hb:{mid}}}:v:{n}")
+        for digest in {v for k, v in raw.items() if k.startswith(b"ref.")}:
+            counts[digest] = counts.get(digest, 0) + 1
+    return counts
+
+
+def test_versions_share_the_arrays_that_did_not_change(store, rclient):
+    lp = from_document(DOC)
+    mid = new_model_id()
+    store.create(mid, "acme", record(lp))
+    before = _blob_keys(rclient, mid)
+    moved = lp.copy()
+    moved.row_upper[0] = 11.0  # one right-hand side moves; every other array stays
+    store.commit(mid, 1, record(moved))
+    added = _blob_keys(rclient, mid) - before
+    assert len(added) == 1  # only lp.row_upper was written again
+    refs = {k: int(v) for k, v in rclient.hgetall(f"{{hb:{mid}}}:blobrefs").items()}
+    assert refs == _expected_refcounts(rclient, store, mid)
+    np.testing.assert_array_equal(store.load(mid, 1).lp.row_upper, lp.row_upper)
+    np.testing.assert_array_equal(store.load(mid, 2).lp.row_upper, moved.row_upper)
+
+
+def test_pruned_versions_release_their_blobs(store, rclient):
+    lp = from_document(DOC)
+    mid = new_model_id()
+    store.create(mid, "acme", record(lp))
+    for n in range(2, 9):  # keep_versions=3: versions 1-5 are pruned on the way
+        changed = lp.copy()
+        changed.c = lp.c + n  # new costs each time: a new blob per version
+        store.commit(mid, n - 1, record(changed))
+    counts = _expected_refcounts(rclient, store, mid)
+    stored = {k: int(v) for k, v in rclient.hgetall(f"{{hb:{mid}}}:blobrefs").items()}
+    assert stored == counts
+    # exactly the blobs the kept versions refer to, no orphans
+    assert {k.rsplit(b":", 1)[1] for k in _blob_keys(rclient, mid)} == set(counts)
+    assert store.load(mid, 8).lp.c.tolist() == (lp.c + 8).tolist()
+
+
+def test_delete_removes_every_key_of_the_model(store, rclient):
+    lp = from_document(DOC)
+    mid = new_model_id()
+    store.create(mid, "acme", record(lp))
+    store.commit(mid, 1, record(lp, note="again"))
+    assert store.delete(mid)
+    assert rclient.keys(f"{{hb:{mid}}}*") == []
