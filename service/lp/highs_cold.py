@@ -279,15 +279,22 @@ def _solve(lp: LinearProgram, options: SolveOptions) -> SolveResult:
     return result
 
 
-def _attach_farkas(result: SolveResult, h: highspy.Highs, lp: LinearProgram, options: SolveOptions) -> str:
-    y = _ray(h.getDualRay)
-    if y is None:
-        # A presolve reduction can leave no ray; a plain simplex run gives one.
+def _ray_or_rerun(result: SolveResult, h: highspy.Highs, lp: LinearProgram, options: SolveOptions, kind: str):
+    """HiGHS's dual ("dual") or primal ("primal") ray. A presolve reduction can
+    leave none; a plain simplex run without presolve then gives one."""
+    getter, status = ("getDualRay", _MS.kInfeasible) if kind == "dual" else ("getPrimalRay", _MS.kUnbounded)
+    ray = _ray(getattr(h, getter))
+    if ray is None:
         h = _new_highs(lp, options, presolve=False)
         h.run()
         result.pivots += _iterations(h)
-        if h.getModelStatus() == _MS.kInfeasible:
-            y = _ray(h.getDualRay)
+        if h.getModelStatus() == status:
+            ray = _ray(getattr(h, getter))
+    return ray
+
+
+def _attach_farkas(result: SolveResult, h: highspy.Highs, lp: LinearProgram, options: SolveOptions) -> str:
+    y = _ray_or_rerun(result, h, lp, options, "dual")
     if y is None:
         y = _single_row_certificate(lp)
     if y is None:
@@ -307,8 +314,7 @@ def _single_row_certificate(lp: LinearProgram) -> np.ndarray | None:
     A = lp.A.tocsr()
     pos = A.maximum(0)
     neg = A.minimum(0)
-    lo = np.where(np.isfinite(lp.col_lower), lp.col_lower, -np.inf)
-    up = np.where(np.isfinite(lp.col_upper), lp.col_upper, np.inf)
+    lo, up = lp.col_lower, lp.col_upper  # already -inf / +inf where unbounded
 
     def dot(M, v):  # M @ v with 0 * inf = 0 (empty entries do not count)
         out = np.zeros(lp.m)
@@ -328,13 +334,7 @@ def _single_row_certificate(lp: LinearProgram) -> np.ndarray | None:
 
 
 def _attach_ray(result: SolveResult, h: highspy.Highs, lp: LinearProgram, options: SolveOptions) -> str:
-    d = _ray(h.getPrimalRay)
-    if d is None:
-        h = _new_highs(lp, options, presolve=False)
-        h.run()
-        result.pivots += _iterations(h)
-        if h.getModelStatus() == _MS.kUnbounded:
-            d = _ray(h.getPrimalRay)
+    d = _ray_or_rerun(result, h, lp, options, "primal")
     if d is None:
         d = _empty_column_ray(lp)
         if d is None:
