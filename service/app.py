@@ -21,6 +21,7 @@ from service.api.errors import register_error_handlers
 from service.cache import VersionCache
 from service.limits import LimitBook
 from service.logs import configure_logging
+from service.lp import kernels
 from service.lp.result import SolveOptions
 from service.operations import ModelService
 from service.store import Store
@@ -87,6 +88,9 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     register_blueprints(app)
     _register_request_hooks(app)
     metrics.init_app(app)
+    # compile (first process on the machine) or load the engine's compiled loops
+    # now, so no request pays for it
+    kernels.warm_up()
     return app
 
 

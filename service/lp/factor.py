@@ -29,23 +29,34 @@ import scipy.sparse as sp
 from scipy.sparse.csgraph import connected_components, maximum_bipartite_matching
 from scipy.sparse.linalg import splu
 
+from . import kernels
+
 
 class SingularBasis(RuntimeError):
     """The basis matrix is singular or too ill-conditioned to factorize."""
 
 
 class _EtaFile:
-    """Product-form updates on top of a base solver (``_solve``/``_solve_t``)."""
+    """Product-form updates on top of a base solver (``_solve``/``_solve_t``).
+
+    The eta records live in flat arrays (row, pivot, start offsets, then the
+    off-pivot entries of each record back to back) so that applying them is one
+    compiled loop (kernels.eta_ftran / eta_btran) instead of a Python loop."""
 
     m: int
 
     def __init__(self) -> None:
-        self.etas: list[tuple[int, np.ndarray, np.ndarray, float]] = []
+        self._rows = np.empty(16, dtype=np.int64)
+        self._pivots = np.empty(16)
+        self._starts = np.zeros(17, dtype=np.int64)
+        self._idx = np.empty(256, dtype=np.int64)
+        self._vals = np.empty(256)
+        self._count = 0
 
     @property
     def updates(self) -> int:
         """Updates applied since the last true factorization (base included)."""
-        return len(self.etas)
+        return self._count
 
     def _solve(self, a: np.ndarray) -> np.ndarray:  # B0^-1 a, a may be 2-D
         raise NotImplementedError
@@ -53,16 +64,15 @@ class _EtaFile:
     def _solve_t(self, h: np.ndarray) -> np.ndarray:  # B0^-T h
         raise NotImplementedError
 
+    def _apply_etas(self, v: np.ndarray) -> None:
+        if self._count:
+            kernels.eta_ftran(v, self._rows, self._pivots, self._starts, self._idx, self._vals, self._count)
+
     def ftran(self, a: np.ndarray) -> np.ndarray:
         if self.m == 0:
             return np.zeros(0)
-        v = self._solve(np.asarray(a, dtype=np.float64))
-        for r, idx, vals, piv in self.etas:
-            vr = v[r]
-            if vr != 0.0:
-                vr = vr / piv
-                v[idx] -= vals * vr
-                v[r] = vr
+        v = np.ascontiguousarray(self._solve(np.asarray(a, dtype=np.float64)))
+        self._apply_etas(v.reshape(-1, 1))
         return v
 
     def ftran_many(self, cols: np.ndarray) -> np.ndarray:
@@ -70,28 +80,39 @@ class _EtaFile:
         if self.m == 0:
             return np.zeros((0, cols.shape[1]))
         v = self._solve(np.asarray(cols, dtype=np.float64))
-        if v.ndim == 1:
-            v = v.reshape(-1, 1)
-        for r, idx, vals, piv in self.etas:
-            vr = v[r] / piv
-            if vr.any():
-                v[idx] -= np.outer(vals, vr)
-                v[r] = vr
+        v = np.ascontiguousarray(v.reshape(-1, 1) if v.ndim == 1 else v)
+        self._apply_etas(v)
         return v
 
     def btran(self, h: np.ndarray) -> np.ndarray:
         if self.m == 0:
             return np.zeros(0)
         h = np.array(h, dtype=np.float64, copy=True)
-        for r, idx, vals, piv in reversed(self.etas):
-            h[r] = (h[r] - vals @ h[idx]) / piv
+        if self._count:
+            kernels.eta_btran(h, self._rows, self._pivots, self._starts, self._idx, self._vals, self._count)
         return self._solve_t(h)
 
     def update(self, r: int, alpha_q: np.ndarray) -> None:
         """Record the basis change in row r with the FTRAN'd entering column."""
         nz = np.flatnonzero(alpha_q)
         nz = nz[nz != r]
-        self.etas.append((r, nz, alpha_q[nz].copy(), float(alpha_q[r])))
+        k, start = self._count, int(self._starts[self._count])
+        if k + 1 >= self._rows.size:  # grow the per-record arrays
+            size = 2 * self._rows.size
+            self._rows = np.resize(self._rows, size)
+            self._pivots = np.resize(self._pivots, size)
+            self._starts = np.resize(self._starts, size + 1)
+        end = start + nz.size
+        if end > self._idx.size:
+            size = max(2 * self._idx.size, end)
+            self._idx = np.resize(self._idx, size)
+            self._vals = np.resize(self._vals, size)
+        self._rows[k] = r
+        self._pivots[k] = alpha_q[r]
+        self._idx[start:end] = nz
+        self._vals[start:end] = alpha_q[nz]
+        self._starts[k + 1] = end
+        self._count = k + 1
 
 
 class Factor(_EtaFile):
@@ -125,11 +146,27 @@ class Factor(_EtaFile):
                 self.lu = splu(B, permc_spec="COLAMD", options={"SymmetricMode": False})
         except RuntimeError as exc:  # "Factor is exactly singular"
             raise SingularBasis(str(exc)) from exc
-        self.seconds = time.perf_counter() - started  # what a refactorization costs here
-        self.lu_nnz = int(self.lu.L.nnz + self.lu.U.nnz)
-        udiag = np.abs(self.lu.U.diagonal())
-        if udiag.size and (udiag.min() <= 1e-11 * max(1.0, udiag.max()) or not np.isfinite(udiag).all()):
+        L, U = self.lu.L, self.lu.U
+        self.lu_nnz = int(L.nnz + U.nnz)
+        udiag = U.diagonal()
+        amax = np.abs(udiag)
+        if amax.size and (amax.min() <= 1e-11 * max(1.0, amax.max()) or not np.isfinite(amax).all()):
             raise SingularBasis("basis matrix is numerically singular")
+        # the factors as plain arrays for the compiled substitutions (kernels.lu_solve):
+        # Pr M Pc = L U with M = B[row_perm][:, col_perm], folded into one gather
+        # (src) before and one scatter (dst) after the triangular solves
+        ident = np.arange(self.m)
+        row_perm = self.row_perm if self.row_perm is not None else ident
+        col_perm = self.col_perm if self.col_perm is not None else ident
+        self._src = np.empty(self.m, dtype=np.int64)
+        self._src[self.lu.perm_r] = row_perm
+        self._dst = np.empty(self.m, dtype=np.int64)
+        self._dst[self.lu.perm_c] = col_perm
+        self._L = (L.indptr.astype(np.int64), L.indices.astype(np.int64), L.data.astype(np.float64))
+        self._U = (U.indptr.astype(np.int64), U.indices.astype(np.int64), U.data.astype(np.float64))
+        self._Ud = np.ascontiguousarray(udiag, dtype=np.float64)
+        self.lu = None  # everything needed is above; SuperLU's copy would double the memory
+        self.seconds = time.perf_counter() - started  # what a refactorization costs here
 
     def _block_triangular(self, B: sp.csc_matrix) -> sp.csc_matrix | None:
         csr = B.tocsr()
@@ -148,7 +185,7 @@ class Factor(_EtaFile):
         # only ever looks inside a diagonal block
         perm = np.argsort(-labels, kind="stable")
         self.row_perm = perm
-        self.col_perm = match[perm]
+        self.col_perm = match[perm].astype(np.int64)
         return sp.csc_matrix(csr[perm][:, self.col_perm])
 
     def solve_block(self, a: np.ndarray) -> np.ndarray:
@@ -160,26 +197,14 @@ class Factor(_EtaFile):
         return self._solve_t(np.asarray(h, dtype=np.float64))
 
     def _solve(self, a: np.ndarray) -> np.ndarray:
-        if self.row_perm is None:
-            return self.lu.solve(a if a.ndim == 1 else np.asfortranarray(a))
-        if a.ndim == 1:
-            v = np.empty_like(a)
-            v[self.col_perm] = self.lu.solve(a[self.row_perm])
-            return v
-        # gather column by column into Fortran order (much cheaper than 2-D fancy indexing)
-        rhs = np.empty(a.shape, order="F")
-        for i in range(a.shape[1]):
-            rhs[:, i] = a[:, i][self.row_perm]
-        v = np.empty(a.shape)
-        v[self.col_perm] = self.lu.solve(rhs)
-        return v
+        rhs = np.ascontiguousarray(a.reshape(a.shape[0], -1))
+        v = kernels.lu_solve(*self._L, *self._U, self._Ud, self._src, self._dst, rhs)
+        return v.reshape(a.shape)
 
     def _solve_t(self, h: np.ndarray) -> np.ndarray:
-        if self.row_perm is None:
-            return self.lu.solve(h, trans="T")
-        z = np.empty_like(h)
-        z[self.row_perm] = self.lu.solve(h[self.col_perm], trans="T")
-        return z
+        if h.ndim == 2:
+            return np.column_stack([self._solve_t(np.ascontiguousarray(col)) for col in h.T])
+        return kernels.lu_solve_t(*self._L, *self._U, self._Ud, self._src, self._dst, h)
 
 
 class BorderedFactor(_EtaFile):
@@ -198,7 +223,7 @@ class BorderedFactor(_EtaFile):
 
     @property
     def updates(self) -> int:
-        return self.base.updates + len(self.etas)
+        return self.base.updates + self._count
 
     def _solve(self, a: np.ndarray) -> np.ndarray:
         m0 = self.m0

@@ -43,6 +43,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.sparse as sp
 
+from . import kernels
 from .basis import Basis, Status
 from .factor import BorderedFactor, Factor, SingularBasis
 from .model import LinearProgram
@@ -56,6 +57,23 @@ FIXED = int(Status.FIXED)
 FREE = int(Status.FREE)
 # d must be >= 0 at lower and <= 0 at upper: infeasibility is max(-sign * d, 0)
 _DUAL_SIGN = np.array([0.0, 1.0, -1.0, 0.0, 0.0])
+_ROW_RULES = {
+    "steepest_edge": kernels.RULE_STEEPEST_EDGE,
+    "dantzig": kernels.RULE_DANTZIG,
+    "smallest_index": kernels.RULE_SMALLEST_INDEX,
+}
+_NO_SHIFT = np.zeros(0)
+_BASIS_KEYS = np.zeros(0, dtype=np.int64)
+
+
+def _basis_keys(size: int) -> np.ndarray:
+    """Fixed random 63-bit keys per variable index: the XOR of the basic
+    variables' keys identifies a basis (Zobrist hashing), cheap enough to
+    notice a degenerate stretch that has come back to a basis it visited."""
+    global _BASIS_KEYS
+    if _BASIS_KEYS.size < size:
+        _BASIS_KEYS = np.random.default_rng(1954).integers(1, 2**63 - 1, size=max(size, 1024), dtype=np.int64)
+    return _BASIS_KEYS[:size]
 
 
 class NumericalTrouble(RuntimeError):
@@ -94,11 +112,13 @@ def _refactor_interval(factor, options: SolveOptions) -> int:
     """Updates between refactorizations, balancing the factorization's cost
     against the growing eta file: about sqrt(2 * t_factor / t_eta). Both are
     modelled from the LU's size so the pivot sequence is reproducible:
-    t_factor ~ 38 ns per nonzero of L + U and t_eta ~ 15 us per eta and solve
-    (measured on the 10,000-row supply-chain benchmark), giving
-    sqrt(nnz(L + U) / 200); at least 16 and never above the option."""
+    t_factor ~ 250 ns per nonzero of L + U (factorizing and recomputing the
+    primal and dual values) and t_eta ~ 4 us per eta and pivot with the
+    compiled eta loops (kernels.py), giving sqrt(nnz(L + U) / 8); a sweep of
+    the divisor (200, 50, 20, 8) on the 10,000- and 2,000-row outage
+    benchmarks was fastest at 8. At least 16 and never above the option."""
     nnz = getattr(factor, "lu_nnz", 0)
-    return int(min(options.refactor_every, max(16, np.sqrt(nnz / 200.0))))
+    return int(min(options.refactor_every, max(16, np.sqrt(nnz / 8.0))))
 
 
 @dataclass
@@ -170,6 +190,7 @@ class Simplex:
         self.events: list[dict] = []
         self.names = list(lp.col_names) + list(lp.row_names)
         self.rng = np.random.default_rng(20261201)
+        self._visited: set[int] = set()  # bases seen since the objective last moved
 
     @staticmethod
     def reuse_applies(
@@ -316,12 +337,9 @@ class Simplex:
     # ------------------------------------------------------------- feasibility
     def primal_infeasibilities(self) -> np.ndarray:
         """Per basic row: amount below lower (negative) or above upper (positive)."""
-        xb = self.x[self.basic_idx]
-        lo = self.lower[self.basic_idx]
-        up = self.upper[self.basic_idx]
-        below = np.minimum(xb - lo, 0.0)
-        above = np.maximum(xb - up, 0.0)
-        return np.where(below < 0, below, above)
+        out = np.empty(self.m)
+        kernels.primal_infeasibilities(self.x, self.basic_idx, self.lower, self.upper, out)
+        return out
 
     def dual_infeasibilities(self) -> np.ndarray:
         """Per variable: how far d is on the wrong side for its nonbasic status."""
@@ -366,7 +384,7 @@ class Simplex:
             infeas = self.primal_infeasibilities()
         pinf = np.abs(infeas).sum()
         if dinf is None:
-            dinf = self.dual_infeasibilities().sum()
+            dinf = kernels.dual_infeasibility_sum(self.d, self.status)
         return {
             "iteration": self.iteration,
             "algorithm": algorithm,
@@ -382,6 +400,16 @@ class Simplex:
             "dual_infeasibility": float(dinf),
             "bound_flips": int(flips),
         }
+
+    def revisits_basis(self) -> bool:
+        """Record the current basis of a degenerate stretch; True when it was
+        visited before in the same stretch, i.e. the pivots are cycling."""
+        key = int(np.bitwise_xor.reduce(_basis_keys(self.N)[self.basic_idx]))
+        if key in self._visited:
+            self._visited.clear()
+            return True
+        self._visited.add(key)
+        return False
 
     def basis_change(self, r: int, q: int, alpha_q: np.ndarray, leave_status: int) -> None:
         p = int(self.basic_idx[r])
@@ -428,89 +456,36 @@ class Simplex:
         self.events.append({"event": "perturb", "iteration": self.iteration, "reason": "dual_stall"})
 
     def _choose_row(self, infeas: np.ndarray) -> int:
-        tol = self.opt.primal_tol
-        cand = np.flatnonzero(np.abs(infeas) > tol)
-        if cand.size == 0:
-            return -1
-        rule = self.rule_override or self.opt.dual_pricing
-        if rule == "smallest_index":
-            return int(cand[np.argmin(self.basic_idx[cand])])
-        if rule == "dantzig":
-            return int(cand[np.argmax(np.abs(infeas[cand]))])
-        return int(cand[np.argmax(infeas[cand] ** 2 / self.dse[cand])])
+        rule = _ROW_RULES[self.rule_override or self.opt.dual_pricing]
+        return int(kernels.choose_row(infeas, self.dse, self.basic_idx, self.opt.primal_tol, rule))
 
     def _dual_ratio_test(self, r: int, alpha_r: np.ndarray, delta: float):
-        """Harris two-pass ratio test with bound flipping.
+        """Harris two-pass ratio test with bound flipping (kernels.dual_ratio_test).
 
         Returns (q, t, flips) with q = -1 when no column can enter.
-        The step t keeps every reduced cost dual feasible (within tolerance).
+        The step t keeps every reduced cost dual feasible (within tolerance):
+        among the columns whose pivot-row entry can restore row r, the
+        breakpoints d_j / |alpha_rj| are passed in increasing order, boxed
+        columns flip while the infeasibility |delta| left pays for them, and
+        the column at the first breakpoint that cannot be passed enters.
         """
         s = 1.0 if delta < 0 else -1.0
-        st_all = self.status
-        ptol = self.opt.pivot_tol
-        # candidates straight from whole-vector masks (the pivot row is often
-        # dense: extracting its nonzeros first costs more than it saves)
-        if s > 0:
-            mask = ((st_all == AT_LOWER) & (alpha_r < -ptol)) | ((st_all == AT_UPPER) & (alpha_r > ptol))
-        else:
-            mask = ((st_all == AT_LOWER) & (alpha_r > ptol)) | ((st_all == AT_UPPER) & (alpha_r < -ptol))
-        mask |= (st_all == FREE) & (np.abs(alpha_r) > ptol)
-        cand = np.flatnonzero(mask)
-        if cand.size == 0:
-            return -1, 0.0, np.zeros(0, dtype=np.int64)
-        at = s * alpha_r[cand]
-        st = st_all[cand]
-        a_abs = np.abs(at)
-        dj = self.d[cand]
-        # sign-adjusted reduced cost (>= -tol for a dual feasible basis)
-        dtil = np.where(st == AT_UPPER, -dj, dj)
-        dtil = np.where(st == FREE, 0.0, dtil)
-        ratio = dtil / a_abs
-        tol = self.opt.dual_tol
-        harris = (dtil + tol) / a_abs
-        range_ = (self.upper[cand] - self.lower[cand]) * a_abs  # inf when not boxed
-        range_ = np.where(st == FREE, np.inf, range_)
-        slope = abs(delta)
         bland = (self.rule_override or self.opt.dual_pricing) == "smallest_index"
-        can_flip = not bland
-        flips: list[np.ndarray] = []
-        rest = np.arange(cand.size)
-        # Pass over breakpoint groups in increasing ratio without sorting all
-        # candidates: each round takes the group inside the Harris bound of
-        # what is left (usually one or two rounds).
-        while rest.size:
-            r_ratio = ratio[rest]
-            tmax = harris[rest].min()
-            in_group = r_ratio <= tmax
-            group = rest[in_group]
-            need = range_[group].sum()
-            # flip only with slope to spare beyond the feasibility tolerance, so a
-            # row that the last breakpoint exactly repairs gets a pivot, not an
-            # "infeasible" verdict built on rounding
-            if can_flip and np.isfinite(need) and slope - need > self.opt.primal_tol:
-                flips.append(group)
-                slope -= need
-                rest = rest[~in_group]
-                continue
-            # Harris pass 2: the largest |alpha| among the group
-            if bland:
-                best = group[np.argmin(cand[group])]
-            else:
-                best = group[np.argmax(a_abs[group])]
-            t = max(ratio[best], 0.0)
-            flip_idx = cand[np.concatenate(flips)] if flips else np.zeros(0, dtype=np.int64)
-            return int(cand[best]), float(t), flip_idx
-        # every candidate could be flipped with slope to spare: dual unbounded
-        return -1, 0.0, np.zeros(0, dtype=np.int64)
+        q, t, flips = kernels.dual_ratio_test(
+            self.status, alpha_r, self.d, self.lower, self.upper, s,
+            self.opt.pivot_tol, self.opt.dual_tol, self.opt.primal_tol, abs(delta), not bland, bland,
+        )  # fmt: skip
+        return int(q), float(t), flips
 
     def _flip_column(self, flip_idx: np.ndarray) -> np.ndarray:
         """Af @ dx for the bound flips (to be FTRAN'd with the entering column)."""
         st = self.status
         to_upper = st[flip_idx] == AT_LOWER
         new = np.where(to_upper, self.upper[flip_idx], self.lower[flip_idx])
-        dx = np.zeros(self.N)
-        dx[flip_idx] = new - self.x[flip_idx]
-        return self.times_af(dx)
+        A = self.A
+        return kernels.flip_column(
+            A.indptr, A.indices, A.data, self.n, self.m, flip_idx, new - self.x[flip_idx]
+        )
 
     def _flip_status(self, flip_idx: np.ndarray) -> None:
         st = self.status
@@ -521,6 +496,7 @@ class Simplex:
     def _dual(self) -> str:
         """Dual simplex from a dual feasible basis. Returns a terminal status."""
         self.algorithms.append("dual")
+        self._visited.clear()
         ptol = self.opt.pivot_tol
         dse = self.opt.dual_pricing == "steepest_edge"
         if self.dse_stale:  # primal pivots changed the basis without updating them
@@ -566,7 +542,7 @@ class Simplex:
             if flip_idx.size:
                 cols.append(self._flip_column(flip_idx))
             sol = self.factor.ftran_many(np.column_stack(cols))
-            alpha_q = sol[:, 0]
+            alpha_q = np.ascontiguousarray(sol[:, 0])
             piv = alpha_q[r]
             if abs(piv) < ptol or abs(piv - alpha_r[q]) > 1e-6 * (1.0 + abs(piv)):
                 trouble += 1
@@ -579,26 +555,23 @@ class Simplex:
             s = 1.0 if delta < 0 else -1.0
             # dual update: d_j += s * t * alpha_rj; leaving variable gets s * t
             if t != 0.0:
-                self.d += (s * t) * alpha_r  # basics have alpha_r = 0
-                self.y -= (s * t) * rho
+                kernels.dual_step(self.d, self.y, alpha_r, rho, s * t)  # basics have alpha_r = 0
             self.d[q] = 0.0
             self.d[p] = s * t
-            # bound flips, then the primal step
+            # bound flips, then the primal step that takes x_p to its violated bound
+            bound = self.lower[p] if delta < 0 else self.upper[p]
             if flip_idx.size:
                 self._flip_status(flip_idx)
-                self.x[self.basic_idx] -= sol[:, -1]
-            bound = self.lower[p] if delta < 0 else self.upper[p]
-            theta_p = (self.x[p] - bound) / piv
-            self.x[self.basic_idx] -= theta_p * alpha_q
+                theta_p = kernels.dual_primal_step(
+                    self.x, self.basic_idx, alpha_q, np.ascontiguousarray(sol[:, -1]), r, bound, piv
+                )
+            else:
+                theta_p = kernels.dual_primal_step(self.x, self.basic_idx, alpha_q, _NO_SHIFT, r, bound, piv)
             self.x[q] += theta_p
             self.x[p] = bound
             # dual steepest edge weights (Forrest and Goldfarb 1992)
             if dse:
-                tau = sol[:, 1]
-                wr = self.dse[r]
-                ratio = alpha_q / piv
-                self.dse = np.maximum(self.dse - 2.0 * ratio * tau + ratio**2 * wr, 1e-8)
-                self.dse[r] = max(wr / piv**2, 1e-8)
+                kernels.update_dse(self.dse, alpha_q, np.ascontiguousarray(sol[:, 1]), piv, r)
             leave_status = AT_LOWER if delta < 0 else AT_UPPER
             self.basis_change(r, q, alpha_q, leave_status)
             self.x[p] = bound
@@ -608,8 +581,11 @@ class Simplex:
             if obj > best_obj + 1e-13 * (1.0 + abs(obj)):  # (best_obj starts at -inf)
                 best_obj = obj
                 since_progress = 0
+                self._visited.clear()
             else:
                 since_progress += 1
+                if self.revisits_basis():  # a cycle: no need to wait for the stall limit
+                    since_progress = max(since_progress, self.opt.stall_limit)
                 if since_progress >= self.opt.stall_limit:
                     # first remedy: perturb costs; second: the smallest-index rule
                     # for the rest of this phase; a third stall gives up
@@ -712,6 +688,7 @@ class Simplex:
 
     def _primal(self) -> str:
         self.algorithms.append("primal")
+        self._visited.clear()
         self.dse_stale = True
         best_obj = np.inf
         since_progress = 0
@@ -777,8 +754,11 @@ class Simplex:
             if obj < best_obj - 1e-13 * (1.0 + abs(obj)):  # (best_obj starts at +inf)
                 best_obj = obj
                 since_progress = 0
+                self._visited.clear()
             else:
                 since_progress += 1
+                if self.revisits_basis():  # a cycle: no need to wait for the stall limit
+                    since_progress = max(since_progress, self.opt.stall_limit)
                 if since_progress >= self.opt.stall_limit:
                     if perturbed:
                         raise NumericalTrouble(

@@ -1,0 +1,374 @@
+"""Compiled inner loops of the simplex iterations (numba).
+
+A pivot touches every one of the N = n + m variables several times (the ratio
+test over the pivot row, the dual update, the infeasibility sums of the pivot
+log) and every basic row (the primal update, the steepest-edge weights, the
+choice of the next leaving row). As numpy expressions each of those is a few
+whole-vector passes with temporaries, plus the interpreter's overhead per
+call; at 10,000 rows that was about two thirds of a pivot's time. Here each
+step is one compiled pass over its data.
+
+Every kernel computes exactly what the numpy expression it replaces computed
+(same candidates, same tie-breaking: the first index wins), so the pivot
+sequence does not depend on which form ran. ``nogil`` lets gunicorn threads
+solve side by side; ``cache`` keeps the machine code under __pycache__ (or
+NUMBA_CACHE_DIR) so only the first process on a machine pays to compile.
+
+Status codes are those of basis.Status (BASIC 0, AT_LOWER 1, AT_UPPER 2,
+FIXED 3, FREE 4).
+"""
+
+from __future__ import annotations
+
+import numba
+import numpy as np
+
+_JIT = {"cache": True, "nogil": True}
+
+_AT_LOWER = 1
+_AT_UPPER = 2
+_FREE = 4
+
+RULE_STEEPEST_EDGE = 0
+RULE_DANTZIG = 1
+RULE_SMALLEST_INDEX = 2
+
+
+@numba.njit(**_JIT)
+def dual_ratio_test(
+    status, alpha_r, d, lower, upper, s, pivot_tol, dual_tol, primal_tol, slope, can_flip, bland
+):
+    """Harris two-pass ratio test with bound flipping over one pivot row.
+
+    Candidates: nonbasic columns whose pivot-row entry (times s) moves the
+    leaving row toward feasibility, |entry| > pivot_tol. Rounds take, among
+    the candidates left, the group whose ratio is within the smallest Harris
+    bound; a group is flipped when the slope left pays for it (by more than
+    primal_tol), otherwise the group's largest |entry| enters (Bland: the
+    smallest index). Returns (q, t, flips); q = -1 when nothing can enter.
+    """
+    N = alpha_r.size
+    cand = np.empty(N, np.int64)
+    a_abs = np.empty(N)
+    ratio = np.empty(N)
+    harris = np.empty(N)
+    reach = np.empty(N)
+    k = 0
+    for j in range(N):
+        st = status[j]
+        a = alpha_r[j]
+        if st == _AT_LOWER:
+            ok = (a < -pivot_tol) if s > 0 else (a > pivot_tol)
+        elif st == _AT_UPPER:
+            ok = (a > pivot_tol) if s > 0 else (a < -pivot_tol)
+        elif st == _FREE:
+            ok = abs(a) > pivot_tol
+        else:
+            ok = False
+        if not ok:
+            continue
+        aa = abs(s * a)
+        if st == _FREE:
+            dt = 0.0
+            reach[k] = np.inf
+        else:
+            dt = -d[j] if st == _AT_UPPER else d[j]
+            reach[k] = (upper[j] - lower[j]) * aa
+        cand[k] = j
+        a_abs[k] = aa
+        ratio[k] = dt / aa
+        harris[k] = (dt + dual_tol) / aa
+        k += 1
+    flips = np.empty(k, np.int64)
+    nflips = 0
+    if k == 0:
+        return -1, 0.0, flips[:0]
+    alive = np.ones(k, np.bool_)
+    left = k
+    while left > 0:
+        tmax = np.inf
+        for i in range(k):
+            if alive[i] and harris[i] < tmax:
+                tmax = harris[i]
+        need = 0.0
+        for i in range(k):
+            if alive[i] and ratio[i] <= tmax:
+                need += reach[i]
+        if can_flip and np.isfinite(need) and slope - need > primal_tol:
+            for i in range(k):
+                if alive[i] and ratio[i] <= tmax:
+                    flips[nflips] = cand[i]
+                    nflips += 1
+                    alive[i] = False
+                    left -= 1
+            slope -= need
+            continue
+        best = -1
+        for i in range(k):
+            if alive[i] and ratio[i] <= tmax:
+                if best < 0:
+                    best = i
+                elif bland:
+                    if cand[i] < cand[best]:
+                        best = i
+                elif a_abs[i] > a_abs[best]:
+                    best = i
+        t = ratio[best]
+        if t < 0.0:
+            t = 0.0
+        return cand[best], t, flips[:nflips]
+    # every candidate could be flipped with slope to spare: dual unbounded
+    return -1, 0.0, flips[:0]
+
+
+@numba.njit(**_JIT)
+def primal_infeasibilities(x, basic_idx, lower, upper, out):
+    """out[i] = amount basic i is below its lower (negative) or above its upper
+    (positive) bound, else 0. Returns sum |out|."""
+    total = 0.0
+    for i in range(basic_idx.size):
+        j = basic_idx[i]
+        below = x[j] - lower[j]
+        if below < 0.0:
+            out[i] = below
+            total -= below
+        else:
+            above = x[j] - upper[j]
+            if above > 0.0:
+                out[i] = above
+                total += above
+            else:
+                out[i] = 0.0
+    return total
+
+
+@numba.njit(**_JIT)
+def choose_row(infeas, dse, basic_idx, tol, rule):
+    """The leaving row among |infeas| > tol: largest infeas^2 / weight (dual
+    steepest edge), largest |infeas| (Dantzig) or smallest variable index
+    (Bland). -1 when the basis is primal feasible."""
+    best = -1
+    best_score = 0.0
+    for i in range(infeas.size):
+        v = infeas[i]
+        if abs(v) <= tol:
+            continue
+        if rule == RULE_SMALLEST_INDEX:
+            if best < 0 or basic_idx[i] < basic_idx[best]:
+                best = i
+            continue
+        score = v * v / dse[i] if rule == RULE_STEEPEST_EDGE else abs(v)
+        if best < 0 or score > best_score:
+            best = i
+            best_score = score
+    return best
+
+
+@numba.njit(**_JIT)
+def dual_infeasibility_sum(d, status):
+    """Sum over nonbasics of how far d is on the wrong side for the status."""
+    total = 0.0
+    for j in range(d.size):
+        st = status[j]
+        if st == _AT_LOWER:
+            if d[j] < 0.0:
+                total -= d[j]
+        elif st == _AT_UPPER:
+            if d[j] > 0.0:
+                total += d[j]
+        elif st == _FREE:
+            total += abs(d[j])
+    return total
+
+
+@numba.njit(**_JIT)
+def dual_step(d, y, alpha_r, rho, step):
+    """d += step * alpha_r; y -= step * rho (the dual update of a dual pivot)."""
+    for j in range(d.size):
+        a = alpha_r[j]
+        if a != 0.0:
+            d[j] += step * a
+    for i in range(y.size):
+        y[i] -= step * rho[i]
+
+
+@numba.njit(**_JIT)
+def dual_primal_step(x, basic_idx, alpha_q, flip_shift, r, bound, piv):
+    """The primal update of a dual pivot: the bound flips' shift of the basics
+    (flip_shift has length 0 when nothing flipped), then the step that takes
+    the leaving basic (row r) to ``bound``. Returns that step, theta_p."""
+    has_flips = flip_shift.size > 0
+    p = basic_idx[r]
+    xp = x[p] - flip_shift[r] if has_flips else x[p]
+    theta = (xp - bound) / piv
+    for i in range(basic_idx.size):
+        j = basic_idx[i]
+        v = x[j] - flip_shift[i] if has_flips else x[j]
+        x[j] = v - theta * alpha_q[i]
+    return theta
+
+
+@numba.njit(**_JIT)
+def update_dse(dse, alpha_q, tau, piv, r):
+    """Dual steepest-edge weights after a pivot in row r (Forrest and Goldfarb 1992)."""
+    wr = dse[r]
+    for i in range(dse.size):
+        ratio = alpha_q[i] / piv
+        w = dse[i] - 2.0 * ratio * tau[i] + ratio * ratio * wr
+        dse[i] = w if w > 1e-8 else 1e-8
+    w = wr / (piv * piv)
+    dse[r] = w if w > 1e-8 else 1e-8
+
+
+@numba.njit(**_JIT)
+def flip_column(indptr, indices, data, n, m, flip_idx, shift):
+    """Af @ dx for the bound flips, dx nonzero only at flip_idx (amounts ``shift``)."""
+    out = np.zeros(m)
+    for k in range(flip_idx.size):
+        j = flip_idx[k]
+        dx = shift[k]
+        if j < n:
+            for p in range(indptr[j], indptr[j + 1]):
+                out[indices[p]] += data[p] * dx
+        else:
+            out[j - n] -= dx
+    return out
+
+
+@numba.njit(**_JIT)
+def eta_ftran(v, rows, pivots, starts, idx, vals, count):
+    """Apply the first ``count`` eta records to v (m x k, in place), in order."""
+    for e in range(count):
+        r = rows[e]
+        piv = pivots[e]
+        lo, hi = starts[e], starts[e + 1]
+        for c in range(v.shape[1]):
+            vr = v[r, c]
+            if vr != 0.0:
+                vr = vr / piv
+                for p in range(lo, hi):
+                    v[idx[p], c] -= vals[p] * vr
+                v[r, c] = vr
+
+
+@numba.njit(**_JIT)
+def eta_btran(h, rows, pivots, starts, idx, vals, count):
+    """Apply the first ``count`` eta records transposed to h (in place), last first."""
+    for e in range(count - 1, -1, -1):
+        r = rows[e]
+        acc = 0.0
+        for p in range(starts[e], starts[e + 1]):
+            acc += vals[p] * h[idx[p]]
+        h[r] = (h[r] - acc) / pivots[e]
+
+
+@numba.njit(**_JIT)
+def gather_rows(a, perm):
+    """out[i, c] = a[perm[i], c], in Fortran order (what SuperLU's solve takes)."""
+    m, k = a.shape
+    out = np.empty((k, m)).T
+    for c in range(k):
+        for i in range(m):
+            out[i, c] = a[perm[i], c]
+    return out
+
+
+@numba.njit(**_JIT)
+def scatter_rows(src, perm):
+    """out[perm[i], c] = src[i, c], in C order."""
+    m, k = src.shape
+    out = np.empty((m, k))
+    for c in range(k):
+        for i in range(m):
+            out[perm[i], c] = src[i, c]
+    return out
+
+
+@numba.njit(**_JIT)
+def lu_solve(Lp, Li, Lx, Up, Ui, Ux, Ud, src, dst, a):
+    """Solve B v = a for each column of a (m x k) with B's LU factors.
+
+    The factors satisfy B[src[i], :] ... = L U up to the column order dst:
+    z = a[src], L U u = z, v[dst] = u. Column-oriented substitution skips
+    every column of L and U whose multiplier is zero, so a sparse right-hand
+    side (a pivot column, a unit vector) costs only what it touches."""
+    m, k = a.shape
+    z = np.empty((m, k))
+    for i in range(m):
+        for c in range(k):
+            z[i, c] = a[src[i], c]
+    for j in range(m):  # L (unit diagonal)
+        for c in range(k):
+            zj = z[j, c]
+            if zj != 0.0:
+                for p in range(Lp[j], Lp[j + 1]):
+                    i = Li[p]
+                    if i != j:
+                        z[i, c] -= Lx[p] * zj
+    for j in range(m - 1, -1, -1):  # U
+        for c in range(k):
+            zj = z[j, c]
+            if zj != 0.0:
+                zj = zj / Ud[j]
+                z[j, c] = zj
+                for p in range(Up[j], Up[j + 1]):
+                    i = Ui[p]
+                    if i != j:
+                        z[i, c] -= Ux[p] * zj
+    v = np.empty((m, k))
+    for i in range(m):
+        for c in range(k):
+            v[dst[i], c] = z[i, c]
+    return v
+
+
+@numba.njit(**_JIT)
+def lu_solve_t(Lp, Li, Lx, Up, Ui, Ux, Ud, src, dst, e):
+    """Solve B^T h = e with the same factors: s = e[dst], U^T L^T t = s, h[src] = t."""
+    m = e.size
+    s = np.empty(m)
+    for i in range(m):
+        s[i] = e[dst[i]]
+    for j in range(m):  # U^T (lower triangular)
+        acc = s[j]
+        for p in range(Up[j], Up[j + 1]):
+            i = Ui[p]
+            if i != j:
+                acc -= Ux[p] * s[i]
+        s[j] = acc / Ud[j]
+    for j in range(m - 1, -1, -1):  # L^T (upper triangular, unit diagonal)
+        acc = s[j]
+        for p in range(Lp[j], Lp[j + 1]):
+            i = Li[p]
+            if i != j:
+                acc -= Lx[p] * s[i]
+        s[j] = acc
+    h = np.empty(m)
+    for i in range(m):
+        h[src[i]] = s[i]
+    return h
+
+
+def warm_up() -> None:
+    """Compile (or load from the cache) every kernel on tiny inputs, so the
+    first real request does not pay for it."""
+    st = np.array([1, 2, 4, 0], dtype=np.int8)
+    v = np.array([1.0, -1.0, 0.5, 0.0])
+    idx = np.arange(4, dtype=np.int64)
+    dual_ratio_test(st, v, v.copy(), -np.ones(4), np.ones(4), 1.0, 1e-9, 1e-7, 1e-7, 1.0, True, False)
+    out = np.zeros(4)
+    primal_infeasibilities(v, idx, -np.ones(4), np.ones(4), out)
+    choose_row(v, np.ones(4), idx, 1e-7, RULE_STEEPEST_EDGE)
+    dual_infeasibility_sum(v, st)
+    dual_step(v.copy(), v.copy(), v, v, 0.5)
+    dual_primal_step(v.copy(), idx, v, np.zeros(0), 0, 0.0, 1.0)
+    update_dse(np.ones(4), v, v, 1.0, 0)
+    flip_column(np.array([0, 1], dtype=np.int32), np.array([0], dtype=np.int32), np.ones(1), 1, 3,
+                idx[:2], np.ones(2))  # fmt: skip
+    eta_ftran(np.ones((4, 2)), idx[:1], np.ones(1), np.array([0, 1], dtype=np.int64), idx[1:2], v[:1], 1)
+    f = gather_rows(np.ones((4, 2)), idx)
+    scatter_rows(f, idx)
+    ptr = np.arange(5, dtype=np.int64)
+    lu_solve(ptr, idx, np.ones(4), ptr, idx, np.ones(4), np.ones(4), idx, idx, np.ones((4, 2)))
+    lu_solve_t(ptr, idx, np.ones(4), ptr, idx, np.ones(4), np.ones(4), idx, idx, np.ones(4))
+    eta_btran(np.ones(4), idx[:1], np.ones(1), np.array([0, 1], dtype=np.int64), idx[1:2], v[:1], 1)
