@@ -147,58 +147,149 @@ def _names(b: bytes, count: int) -> list[str]:
     return out
 
 
-def encode_lp(lp: LinearProgram) -> dict[str, bytes]:
-    A = lp.A.tocsc()
-    meta = {"m": lp.m, "n": lp.n, "nnz": int(A.nnz), "sense": lp.sense, "offset": lp.offset, "name": lp.name}
+# Large arrays are stored in pieces of a fixed number of rows or columns, each a
+# content-addressed blob (see split_blobs): a change rewrites only the pieces it
+# touches. An appended constraint changes the last row piece of the matrix, of
+# the row bounds and of the row names; the cost, bound and name pieces of the
+# columns stay shared with the version before, and so do the pieces of the plan
+# that did not move.
+ROW_PIECE = 256  # rows per piece (matrix rows, row bounds and names, activities, shadow prices)
+COL_PIECE = 1024  # columns per piece (costs, column bounds and names, values, reduced costs)
+
+Fields = dict[str, "bytes | list[bytes]"]  # a list value is stored piecewise
+
+
+def _pieces(a: np.ndarray, dtype: np.dtype, size: int) -> list[bytes]:
+    buf = np.ascontiguousarray(a, dtype=dtype)
+    return [buf[i : i + size].tobytes() for i in range(0, buf.size, size)]
+
+
+def _name_pieces(names: list[str], size: int) -> list[bytes]:
+    return ["\n".join(names[i : i + size]).encode("utf-8") for i in range(0, len(names), size)]
+
+
+def _whole(value: "bytes | list[bytes]") -> bytes:
+    return b"".join(value) if isinstance(value, list) else value
+
+
+def _row_pieces(A) -> list[bytes]:
+    """The matrix by rows, ROW_PIECE rows a piece: [rows, nnz] (int32), the
+    piece's own row pointers (int32), column indices (int32), values (float64)."""
+    R = A.tocsr()
+    R.sort_indices()  # one byte form for one matrix, so equal pieces share a blob
+    out = []
+    for r0 in range(0, R.shape[0], ROW_PIECE):
+        r1 = min(R.shape[0], r0 + ROW_PIECE)
+        p0, p1 = int(R.indptr[r0]), int(R.indptr[r1])
+        out.append(
+            np.array([r1 - r0, p1 - p0], dtype=I4).tobytes()
+            + _buf(R.indptr[r0 : r1 + 1] - p0, I4)
+            + _buf(R.indices[p0:p1], I4)
+            + _buf(R.data[p0:p1], F8)
+        )
+    return out
+
+
+def _matrix_from_rows(pieces: list[bytes], m: int, n: int):
+    import scipy.sparse as sp
+
+    ptrs, idx, vals = [np.zeros(1, dtype=np.int64)], [], []
+    offset = 0
+    for b in pieces:
+        rows, nnz = (int(v) for v in np.frombuffer(b[:8], dtype=I4))
+        at = 8
+        ptr = np.frombuffer(b[at : at + 4 * (rows + 1)], dtype=I4).astype(np.int64)
+        at += 4 * (rows + 1)
+        idx.append(np.frombuffer(b[at : at + 4 * nnz], dtype=I4))
+        at += 4 * nnz
+        vals.append(np.frombuffer(b[at : at + 8 * nnz], dtype=F8))
+        ptrs.append(ptr[1:] + offset)
+        offset += nnz
+    indptr = np.concatenate(ptrs)
+    if indptr.size != m + 1:
+        raise ValueError(f"stored matrix holds {indptr.size - 1} rows, expected {m}")
+    indices = np.concatenate(idx).astype(np.int32) if idx else np.zeros(0, dtype=np.int32)
+    data = np.concatenate(vals).astype(np.float64) if vals else np.zeros(0)
+    R = sp.csr_matrix((data, indices, indptr), shape=(m, n))
+    return R.tocsc()
+
+
+def encode_lp(lp: LinearProgram) -> Fields:
+    meta = {
+        "m": lp.m,
+        "n": lp.n,
+        "nnz": int(lp.A.nnz),
+        "sense": lp.sense,
+        "offset": lp.offset,
+        "name": lp.name,
+    }
     return {
         "lp.meta": orjson.dumps(meta),
-        "lp.indptr": _buf(A.indptr, I8),
-        "lp.indices": _buf(A.indices, I4),
-        "lp.data": _buf(A.data, F8),
-        "lp.c": _buf(lp.c, F8),
-        "lp.col_lower": _buf(lp.col_lower, F8),
-        "lp.col_upper": _buf(lp.col_upper, F8),
-        "lp.row_lower": _buf(lp.row_lower, F8),
-        "lp.row_upper": _buf(lp.row_upper, F8),
-        "lp.col_names": "\n".join(lp.col_names).encode("utf-8"),
-        "lp.row_names": "\n".join(lp.row_names).encode("utf-8"),
+        "lp.rows": _row_pieces(lp.A),
+        "lp.c": _pieces(lp.c, F8, COL_PIECE),
+        "lp.col_lower": _pieces(lp.col_lower, F8, COL_PIECE),
+        "lp.col_upper": _pieces(lp.col_upper, F8, COL_PIECE),
+        "lp.row_lower": _pieces(lp.row_lower, F8, ROW_PIECE),
+        "lp.row_upper": _pieces(lp.row_upper, F8, ROW_PIECE),
+        "lp.col_names": _name_pieces(lp.col_names, COL_PIECE),
+        "lp.row_names": _name_pieces(lp.row_names, ROW_PIECE),
     }
 
 
-def decode_lp(f: dict[bytes, bytes]) -> LinearProgram:
+def _names_of(value: "bytes | list[bytes]", count: int) -> list[str]:
+    if isinstance(value, list):
+        value = b"\n".join(value)
+    return _names(value, count)
+
+
+def decode_lp(f: dict) -> LinearProgram:
     import scipy.sparse as sp
 
     meta = orjson.loads(f[b"lp.meta"])
     m, n = meta["m"], meta["n"]
-    A = sp.csc_matrix(
-        (_arr(f[b"lp.data"], F8), _arr(f[b"lp.indices"], I4), _arr(f[b"lp.indptr"], I8)), shape=(m, n)
-    )
+    if b"lp.rows" in f:
+        A = _matrix_from_rows(f[b"lp.rows"], m, n)
+    else:  # column-wise layout of stores written before the matrix was kept in row pieces
+        A = sp.csc_matrix(
+            (
+                _arr(_whole(f[b"lp.data"]), F8),
+                _arr(_whole(f[b"lp.indices"]), I4),
+                _arr(_whole(f[b"lp.indptr"]), I8),
+            ),
+            shape=(m, n),
+        )
     return LinearProgram(
         A=A,
-        c=_arr(f[b"lp.c"], F8),
-        col_lower=_arr(f[b"lp.col_lower"], F8),
-        col_upper=_arr(f[b"lp.col_upper"], F8),
-        row_lower=_arr(f[b"lp.row_lower"], F8),
-        row_upper=_arr(f[b"lp.row_upper"], F8),
+        c=_arr(_whole(f[b"lp.c"]), F8),
+        col_lower=_arr(_whole(f[b"lp.col_lower"]), F8),
+        col_upper=_arr(_whole(f[b"lp.col_upper"]), F8),
+        row_lower=_arr(_whole(f[b"lp.row_lower"]), F8),
+        row_upper=_arr(_whole(f[b"lp.row_upper"]), F8),
         sense=meta["sense"],
         offset=meta["offset"],
-        col_names=_names(f[b"lp.col_names"], n),
-        row_names=_names(f[b"lp.row_names"], m),
+        col_names=_names_of(f[b"lp.col_names"], n),
+        row_names=_names_of(f[b"lp.row_names"], m),
         name=meta["name"],
     )
 
 
 _SOLUTION_FIELDS = ("x", "row_activity", "shadow_price", "reduced_cost")
+_SOLUTION_PIECE = {
+    "x": COL_PIECE,
+    "reduced_cost": COL_PIECE,
+    "row_activity": ROW_PIECE,
+    "shadow_price": ROW_PIECE,
+}
 
 
-def encode_record(rec: VersionRecord) -> dict[str, bytes]:
+def encode_record(rec: VersionRecord) -> Fields:
     out = encode_lp(rec.lp)
     if rec.basis is not None:
         out["basis"] = rec.basis.to_bytes()
     for name in _SOLUTION_FIELDS:
         value = getattr(rec.solution, name)
         if value is not None:
-            out[f"sol.{name}"] = _buf(value, F8)
+            out[f"sol.{name}"] = _pieces(value, F8, _SOLUTION_PIECE[name])
     if rec.moved_cols is not None:
         out["moved.cols"] = _buf(rec.moved_cols, I4)
     if rec.moved_rows is not None:
@@ -210,9 +301,9 @@ def encode_record(rec: VersionRecord) -> dict[str, bytes]:
     return out
 
 
-def decode_record(f: dict[bytes, bytes]) -> VersionRecord:
+def decode_record(f: dict) -> VersionRecord:
     arrays = [f.get(f"sol.{name}".encode()) for name in _SOLUTION_FIELDS]
-    sol = Solution(*(None if b is None else _arr(b, F8) for b in arrays))
+    sol = Solution(*(None if b is None else _arr(_whole(b), F8) for b in arrays))
     return VersionRecord(
         version=int(f[b"version"]),
         lp=decode_lp(f),
@@ -226,29 +317,40 @@ def decode_record(f: dict[bytes, bytes]) -> VersionRecord:
     )
 
 
-# The model's large arrays rarely all change between versions (a new row leaves
-# costs, column bounds and names as they were), so they are stored once per
-# model as content-addressed blobs, counted by the versions that use them; a
-# version keeps only their digests under "ref.<field>".
-BLOB_FIELDS = (
-    "lp.indptr", "lp.indices", "lp.data", "lp.c", "lp.col_lower", "lp.col_upper",
-    "lp.row_lower", "lp.row_upper", "lp.col_names", "lp.row_names",
+# A version keeps, for each piecewise field, the digests of its pieces under
+# "ref.<field>" (comma-separated, in order); the pieces themselves are blobs
+# counted by the versions that use them (released on prune and delete). Stores
+# written before pieces existed kept one blob per field under the same names.
+PIECE_FIELDS = (
+    "lp.rows", "lp.c", "lp.col_lower", "lp.col_upper", "lp.row_lower", "lp.row_upper",
+    "lp.col_names", "lp.row_names", "sol.x", "sol.row_activity", "sol.shadow_price", "sol.reduced_cost",
 )  # fmt: skip
+_LEGACY_BLOB_FIELDS = ("lp.indptr", "lp.indices", "lp.data")
 REF = "ref."
+REF_FIELDS = tuple(REF + name for name in PIECE_FIELDS + _LEGACY_BLOB_FIELDS)
+_NAME_FIELDS = (b"lp.col_names", b"lp.row_names")
 
 
-def split_blobs(fields: dict[str, bytes]) -> tuple[dict[str, bytes], dict[str, bytes]]:
-    """A version's fields with the large arrays replaced by digests, and the blobs by digest."""
-    inline = dict(fields)
+def split_blobs(fields: Fields) -> tuple[dict[str, bytes], dict[str, bytes]]:
+    """A version's fields with each piecewise value replaced by its pieces'
+    digests, and the pieces by digest."""
+    inline: dict[str, bytes] = {}
     blobs: dict[str, bytes] = {}
-    for name in BLOB_FIELDS:
-        data = inline.pop(name, None)
-        if data is None:
+    for name, value in fields.items():
+        if not isinstance(value, list):
+            inline[name] = value
             continue
-        digest = hashlib.blake2b(data, digest_size=16).hexdigest()
-        inline[REF + name] = digest.encode()
-        blobs[digest] = data
+        digests = []
+        for piece in value:
+            digest = hashlib.blake2b(piece, digest_size=16).hexdigest()
+            blobs[digest] = piece
+            digests.append(digest)
+        inline[REF + name] = ",".join(digests).encode()
     return inline, blobs
+
+
+def ref_digests(value: bytes | None) -> list[str]:
+    return [d for d in value.decode().split(",") if d] if value else []
 
 
 # ------------------------------------------------------------------------------ ids
@@ -421,8 +523,8 @@ class Store:
         return f"{{hb:{mid}}}:blobrefs"
 
     def _version_refs(self, pipe: Any, mid: str, version: int) -> set[str]:
-        vals = pipe.hmget(self._ver(mid, version), [REF + name for name in BLOB_FIELDS])
-        return {v.decode() for v in vals if v}
+        vals = pipe.hmget(self._ver(mid, version), list(REF_FIELDS))
+        return {d for v in vals for d in ref_digests(v)}
 
     def _plan_blobs(
         self, pipe: Any, mid: str, blobs: dict[str, bytes], dropped: list[set[str]]
@@ -443,22 +545,29 @@ class Store:
         for refs in dropped:
             for d in refs:
                 after[d] -= 1
-        ops: list[tuple[str, Any]] = []
+        ops: list[tuple[str, tuple, dict]] = []
+        counted: dict[str, int] = {}
+        gone: list[str] = []
         for d in involved:
             if after[d] > 0:
                 if counts[d] == 0:
-                    ops.append(("set", (self._blob(mid, d), blobs[d])))
+                    ops.append(("set", (self._blob(mid, d), blobs[d]), {}))
                 if after[d] != counts[d]:
-                    ops.append(("hset", (self._blobrefs(mid), d, after[d])))
+                    counted[d] = after[d]
             else:
-                ops.append(("hdel", (self._blobrefs(mid), d)))
-                ops.append(("delete", (self._blob(mid, d),)))
+                gone.append(d)
+        # one command each for the counts and the releases (a version has hundreds of pieces)
+        if counted:
+            ops.append(("hset", (self._blobrefs(mid),), {"mapping": counted}))
+        if gone:
+            ops.append(("hdel", (self._blobrefs(mid), *gone), {}))
+            ops.append(("delete", tuple(self._blob(mid, d) for d in gone), {}))
         return ops
 
     @staticmethod
-    def _queue(pipe: Any, ops: list[tuple[str, Any]]) -> None:
-        for name, args in ops:
-            getattr(pipe, name)(*args)
+    def _queue(pipe: Any, ops: list[tuple[str, tuple, dict]]) -> None:
+        for name, args, kwargs in ops:
+            getattr(pipe, name)(*args, **kwargs)
 
     @staticmethod
     def _index(tenant: str) -> str:
@@ -506,13 +615,14 @@ class Store:
         raw = self.r.hgetall(self._ver(model_id, version))
         if not raw:
             return None
-        refs = [(k, v.decode()) for k, v in raw.items() if k.startswith(REF.encode())]
-        if refs:
-            blobs = self.r.mget([self._blob(model_id, d) for _, d in refs])
-            for (key, digest), data in zip(refs, blobs):
-                if data is None:
-                    raise ValueError(f"model {model_id} version {version}: blob {digest} is missing")
-                raw[key[len(REF) :]] = data
+        refs = {k[len(REF) :]: ref_digests(v) for k, v in raw.items() if k.startswith(REF.encode())}
+        wanted = sorted({d for digests in refs.values() for d in digests})
+        found = dict(zip(wanted, self.r.mget([self._blob(model_id, d) for d in wanted]))) if wanted else {}
+        for name, digests in refs.items():
+            missing = [d for d in digests if found[d] is None]
+            if missing:
+                raise ValueError(f"model {model_id} version {version}: blob {missing[0]} is missing")
+            raw[name] = [found[d] for d in digests]  # the pieces in order (one whole blob in old stores)
         return decode_record(raw)
 
     def summaries(self, head: Head) -> list[dict[str, Any]]:

@@ -209,7 +209,7 @@ def _expected_refcounts(rclient, store, mid: str) -> dict[bytes, int]:
     counts: dict[bytes, int] = {}
     for n in range(head.first_version, head.version + 1):
         raw = rclient.hgetall(f"{{hb:{mid}}}:v:{n}")
-        for digest in {v for k, v in raw.items() if k.startswith(b"ref.")}:
+        for digest in {d for k, v in raw.items() if k.startswith(b"ref.") for d in v.split(b",") if d}:
             counts[digest] = counts.get(digest, 0) + 1
     return counts
 
@@ -253,3 +253,106 @@ def test_delete_removes_every_key_of_the_model(store, rclient):
     store.commit(mid, 1, record(lp, note="again"))
     assert store.delete(mid)
     assert rclient.keys(f"{{hb:{mid}}}*") == []
+
+
+def _wide_lp(rows: int, cols: int, seed: int = 3):
+    """A model larger than the storage pieces (ROW_PIECE rows, COL_PIECE columns)."""
+    import scipy.sparse as sp
+
+    from service.lp import LinearProgram
+
+    rng = np.random.default_rng(seed)
+    A = sp.random(rows, cols, density=4.0 / cols, random_state=rng, format="csc")
+    return LinearProgram(
+        A=A,
+        c=rng.normal(size=cols),
+        col_lower=np.zeros(cols),
+        col_upper=np.where(rng.random(cols) < 0.5, np.inf, 5.0),
+        row_lower=np.full(rows, -np.inf),
+        row_upper=rng.random(rows) * 10,
+        col_names=[f"x{j}" for j in range(cols)],
+        row_names=[f"r{i}" for i in range(rows)],
+    )
+
+
+def test_piecewise_encoding_round_trips_a_model_larger_than_the_pieces(store):
+    from service.store import COL_PIECE, ROW_PIECE
+
+    lp = _wide_lp(2 * ROW_PIECE + 17, 3 * COL_PIECE + 5)
+    mid = new_model_id()
+    store.create(mid, "acme", record(lp))
+    back = store.load(mid, 1)
+    assert (back.lp.A != lp.A).nnz == 0 and back.lp.A.shape == lp.A.shape
+    assert back.lp.col_names == lp.col_names and back.lp.row_names == lp.row_names
+    for name in ("c", "col_lower", "col_upper", "row_lower", "row_upper"):
+        np.testing.assert_array_equal(getattr(back.lp, name), getattr(lp, name))
+    np.testing.assert_array_equal(back.solution.x, np.arange(lp.n, dtype=float))
+    np.testing.assert_array_equal(back.solution.row_activity, lp.A @ np.arange(lp.n, dtype=float))
+
+
+def test_an_appended_constraint_writes_only_the_last_row_pieces(store, rclient):
+    """The common change (one new row) must not rewrite the whole matrix, costs or names."""
+    import scipy.sparse as sp
+
+    from service.store import ROW_PIECE
+
+    lp = _wide_lp(3 * ROW_PIECE + 10, 2500)
+    mid = new_model_id()
+    store.create(mid, "acme", record(lp))
+    before = _blob_keys(rclient, mid)
+    grown = lp.copy()
+    grown.A = sp.vstack([lp.A, sp.csr_matrix(([1.0, 2.0], ([0, 0], [3, 900])), shape=(1, lp.n))], format="csc")
+    grown.row_lower = np.append(lp.row_lower, -np.inf)
+    grown.row_upper = np.append(lp.row_upper, 4.0)
+    grown.row_names = [*lp.row_names, "new lane cap"]
+    store.commit(mid, 1, record(grown))
+    added = _blob_keys(rclient, mid) - before
+    # the last row piece of: the matrix, both row bounds, the row names, the activities, the
+    # shadow prices (the columns' costs, bounds, names and values are shared with version 1)
+    assert len(added) == 6
+    assert sum(len(rclient.get(k)) for k in added) < 0.1 * sum(len(rclient.get(k)) for k in before)
+    back = store.load(mid, 2).lp
+    assert (back.A != grown.A).nnz == 0 and back.row_names[-1] == "new lane cap"
+    assert store.load(mid, 1).lp.m == lp.m  # the older version is intact
+
+
+def test_versions_written_in_the_whole_array_layout_still_load(store, rclient):
+    """Stores written before the piecewise layout kept one blob per array and the plan inline."""
+    import hashlib
+
+    import orjson
+
+    lp = _wide_lp(40, 30)
+    mid = new_model_id()
+    store.create(mid, "acme", record(lp))  # a head and version 1 in the current layout
+    A = lp.A.tocsc()
+    whole = {
+        "lp.indptr": A.indptr.astype("<i8").tobytes(),
+        "lp.indices": A.indices.astype("<i4").tobytes(),
+        "lp.data": A.data.astype("<f8").tobytes(),
+        "lp.c": lp.c.astype("<f8").tobytes(),
+        "lp.col_lower": lp.col_lower.astype("<f8").tobytes(),
+        "lp.col_upper": lp.col_upper.astype("<f8").tobytes(),
+        "lp.row_lower": lp.row_lower.astype("<f8").tobytes(),
+        "lp.row_upper": lp.row_upper.astype("<f8").tobytes(),
+        "lp.col_names": "\n".join(lp.col_names).encode(),
+        "lp.row_names": "\n".join(lp.row_names).encode(),
+    }
+    fields = {
+        "lp.meta": orjson.dumps({"m": lp.m, "n": lp.n, "nnz": int(A.nnz), "sense": 1, "offset": 0.0, "name": ""}),
+        "sol.x": np.arange(lp.n, dtype="<f8").tobytes(),
+        "result": orjson.dumps({"status": "optimal"}),
+        "summary": orjson.dumps({"version": 1}),
+        "created_at": b"1.0",
+        "version": b"1",
+    }
+    for name, data in whole.items():
+        digest = hashlib.blake2b(data, digest_size=16).hexdigest()
+        rclient.set(f"{{hb:{mid}}}:blob:{digest}", data)
+        fields["ref." + name] = digest.encode()
+    rclient.delete(f"{{hb:{mid}}}:v:1")
+    rclient.hset(f"{{hb:{mid}}}:v:1", mapping=fields)
+    back = store.load(mid, 1)
+    assert (back.lp.A != lp.A).nnz == 0 and back.lp.row_names == lp.row_names
+    np.testing.assert_array_equal(back.lp.row_upper, lp.row_upper)
+    np.testing.assert_array_equal(back.solution.x, np.arange(lp.n, dtype=float))
