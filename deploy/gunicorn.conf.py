@@ -1,9 +1,11 @@
 """gunicorn settings for hotbasis (``gunicorn -c deploy/gunicorn.conf.py service.wsgi:app``).
 
 Environment: PORT (default 8750), HOTBASIS_BIND (overrides host:port),
-HOTBASIS_WORKERS (default 2: one per core here; the engine is CPU-bound and
-holds the GIL, so processes, not threads, give parallel solves),
-HOTBASIS_THREADS (default 4: overlap Redis and network waits within a worker),
+HOTBASIS_WORKERS (default: twice the cores; the engine is CPU-bound and
+mostly holds the GIL, so processes, not threads, give parallel solves, and the
+second process per core keeps the core busy while the first waits on Redis's
+fsync), HOTBASIS_THREADS (default 1: more threads per process only contend for
+the GIL; measured in README.md, section Load),
 HOTBASIS_GRACEFUL_TIMEOUT (default 30 s: on SIGTERM the workers stop accepting
 connections and finish the requests in flight for up to this long),
 PROMETHEUS_MULTIPROC_DIR (where the workers' metric files go; by default a fresh
@@ -24,8 +26,8 @@ if _METRICS_DIR_OWNED:
 METRICS_DIR = Path(os.environ["PROMETHEUS_MULTIPROC_DIR"])
 
 bind = os.environ.get("HOTBASIS_BIND", f"127.0.0.1:{os.environ.get('PORT', '8750')}")
-workers = int(os.environ.get("HOTBASIS_WORKERS", "2"))
-threads = int(os.environ.get("HOTBASIS_THREADS", "4"))
+workers = int(os.environ.get("HOTBASIS_WORKERS", str(2 * (os.cpu_count() or 1))))
+threads = int(os.environ.get("HOTBASIS_THREADS", "1"))
 worker_class = "gthread"
 timeout = int(os.environ.get("HOTBASIS_WORKER_TIMEOUT", "300"))  # a cold solve of a big model takes a while
 graceful_timeout = int(os.environ.get("HOTBASIS_GRACEFUL_TIMEOUT", "30"))

@@ -46,7 +46,7 @@ def _env_config() -> dict[str, Any]:
         "REDIS_CONNECT_TIMEOUT": float(env.get("HOTBASIS_REDIS_CONNECT_TIMEOUT", "2")),
         "MAX_CONTENT_LENGTH": int(env.get("HOTBASIS_MAX_BODY_BYTES", str(64 * 1024 * 1024))),
         "KEEP_VERSIONS": int(env.get("HOTBASIS_KEEP_VERSIONS", "20")),
-        "CACHE_SIZE": int(env.get("HOTBASIS_CACHE_SIZE", "16")),
+        "CACHE_SIZE": int(env.get("HOTBASIS_CACHE_SIZE", "64")),
         "COLD_ENGINE": env.get("HOTBASIS_COLD_ENGINE", "highs"),
         "LOG_LEVEL": env.get("HOTBASIS_LOG_LEVEL", "INFO"),
         "OPENAPI_PATH": env.get(
