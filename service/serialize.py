@@ -312,10 +312,15 @@ def change_report(
         delta = after.x[moved_cols] - before_vals[moved_cols]
         impact = np.abs(after_lp.c[moved_cols] * delta)
         order = np.lexsort((-np.abs(delta), -impact))[:STORED_MOVES]  # biggest cost impact first
-        for k in order.tolist():
-            j = int(moved_cols[k])
-            prior = None if old_x is None or np.isnan(old_x[j]) else float(old_x[j])
-            variables[after_lp.col_names[j]] = {"before": prior, "after": _clean(after.x[j : j + 1])[0]}
+        picked = moved_cols[order]
+        afters = _clean(after.x[picked])
+        priors = [None] * picked.size if old_x is None else old_x[picked].tolist()
+        names = after_lp.col_names
+        for j, prior, value in zip(picked.tolist(), priors, afters):
+            variables[names[j]] = {
+                "before": None if prior is None or math.isnan(prior) else prior,
+                "after": value,
+            }
         if old.x is not None:  # removed variables that carried flow
             removed = np.ones(old_lp.n, dtype=bool)
             removed[col_src[col_src >= 0]] = False

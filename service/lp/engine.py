@@ -54,8 +54,7 @@ def reoptimize(
         raise ValueError("basis shape does not match the model; carry it over with remap() first")
     basis = normalize_nonbasic(basis, lp)
     reason = change_summary or "warm start from the stored basis"
-    if not Simplex.reuse_applies(lp, basis, state, options):
-        state = None
+    # (the simplex adopts ``state`` only if Simplex.reuse_applies says it fits)
     # The basis is repaired only if it turns out broken (wrong count, or the
     # initial factorization fails), so a sound basis is factorized just once.
     return _builtin(lp, basis, options, warm=True, reason=reason, state=state, repair=True)

@@ -157,9 +157,11 @@ class Simplex:
         self.reused = False
         self.refactor_every = options.refactor_every
         self.timings = {"factorize": 0.0}
+        self.sc = None
+        self.scaling_reused = False
         if state is not None and options.scale:
-            self.reused = self._reuse(state)
-        if not self.reused:
+            self.reused = self._reuse(state)  # sets the scaling even when the factorization is too old
+        if self.sc is None:
             self.sc = compute_scaling(lp.A) if options.scale else Scaling(np.ones(m), np.ones(n))
             self.A = scale_matrix(lp.A, self.sc) if options.scale else sp.csc_matrix(lp.A)
         R, S = self.sc.row, self.sc.col
@@ -188,7 +190,7 @@ class Simplex:
         self.pivot_log: list[dict] = []
         self.log_dropped = 0
         self.events: list[dict] = []
-        self.names = list(lp.col_names) + list(lp.row_names)
+        self._col_names, self._row_names = lp.col_names, lp.row_names  # for pivot records
         self.rng = np.random.default_rng(20261201)
         self._visited: set[int] = set()  # bases seen since the objective last moved
 
@@ -196,15 +198,14 @@ class Simplex:
     def reuse_applies(
         lp: LinearProgram, basis: Basis, state: EngineState | None, options: SolveOptions
     ) -> bool:
-        """True when ``state`` fits: the model only gained rows (costs and bounds
-        may differ), the basic set is the old one plus the new rows' logicals,
-        and the cached factorization is still young."""
+        """True when ``state``'s factorization fits: the model only gained rows
+        (costs and bounds may differ), the basic set is the old one plus the new
+        rows' logicals, and the cached factorization is still young."""
         if state is None or not options.scale:
             return False
         n, m = lp.n, lp.m
-        A, old = lp.A, state.A
-        m0 = old.shape[0]
-        if old.shape[1] != n or m < m0 or getattr(state.factor, "depth", 0) >= MAX_REUSE_DEPTH:
+        m0 = state.A.shape[0]
+        if state.A.shape[1] != n or m < m0 or getattr(state.factor, "depth", 0) >= MAX_REUSE_DEPTH:
             return False
         if state.factor.updates >= 0.75 * _refactor_interval(state.factor, options):
             return False  # too close to its next refactorization to be worth wrapping
@@ -212,6 +213,16 @@ class Simplex:
         basic_now = np.flatnonzero(status == BASIC)
         expected = np.sort(np.concatenate([state.basic_idx, n + np.arange(m0, m)]))
         if basic_now.size != m or not np.array_equal(expected, basic_now):
+            return False
+        return Simplex.only_rows_appended(lp, state)
+
+    @staticmethod
+    def only_rows_appended(lp: LinearProgram, state: EngineState) -> bool:
+        """True when ``lp``'s matrix is ``state``'s with rows appended (its scaling then still fits)."""
+        n, m = lp.n, lp.m
+        A, old = lp.A, state.A
+        m0 = old.shape[0]
+        if old.shape[1] != n or m < m0:
             return False
         # the first m0 rows of A must be exactly the old matrix (indices are sorted)
         top = A.indices < m0
@@ -224,8 +235,15 @@ class Simplex:
         )
 
     def _reuse(self, state: EngineState) -> bool:
-        """Adopt a previous solve's scaling and factorization (see reuse_applies)."""
-        if not self.reuse_applies(self.lp, self._basis_in, state, self.opt):
+        """Adopt a previous solve's scaling and factorization (see reuse_applies).
+
+        When only the factorization is unfit (too old, too deep, another basic
+        set) but the matrix only gained rows, the scaling is still kept (new
+        rows scaled against the kept column scales), which spares recomputing
+        it; the caller then factorizes afresh. Returns True when the
+        factorization was adopted."""
+        full = self.reuse_applies(self.lp, self._basis_in, state, self.opt)
+        if not full and not self.only_rows_appended(self.lp, state):
             return False
         lp, n, m = self.lp, self.n, self.m
         A = lp.A
@@ -247,14 +265,20 @@ class Simplex:
             R_new[has] = np.exp2(np.round(-0.5 * (rmax[has] + rmin[has])))
             new_block = sp.csr_matrix((A.data[~top] * S[cols] * R_new[rows], (rows, cols)), shape=(m - m0, n))
             self.A = sp.vstack([state.A_scaled, new_block], format="csc")
+        else:
+            new_block = None
+            self.A = state.A_scaled
+        self.sc = Scaling(np.concatenate([state.scaling.row, R_new]), S)
+        if not full:
+            self.scaling_reused = True
+            return False
+        if new_block is not None:
             # the border: new rows over the old basic columns, in basis order
             struct = np.flatnonzero(state.basic_idx < n)
             pick = sp.csc_matrix((np.ones(struct.size), (state.basic_idx[struct], struct)), shape=(n, m0))
             C = new_block @ pick
         else:
-            self.A = state.A_scaled
             C = sp.csr_matrix((0, m0))
-        self.sc = Scaling(np.concatenate([state.scaling.row, R_new]), S)
         self.basic_idx = basic_idx
         self.factor = BorderedFactor(state.factor, C)
         self._adapt_refactor_interval()
@@ -374,7 +398,7 @@ class Simplex:
             self.log_dropped += 1
 
     def _name(self, j: int) -> str:
-        return self.names[j]
+        return self._col_names[j] if j < self.n else self._row_names[j - self.n]
 
     def _kind(self, j: int) -> str:
         return "variable" if j < self.n else "constraint"
@@ -796,6 +820,8 @@ class Simplex:
                 except NumericalTrouble:
                     self.refactor("reuse_inaccurate")
             else:
+                if self.scaling_reused:
+                    self.events.append({"event": "reuse", "iteration": 0, "reason": "cached_scaling"})
                 self.refactor("initial")
             for _round in range(12):
                 pf = self.primal_feasible()

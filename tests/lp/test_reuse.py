@@ -20,8 +20,8 @@ PROBLEMS = netlib_problems()
 CHAIN = [one_cut, one_cut, changed_costs, one_cut, tighter_bound_and_moved_rhs]
 
 
-def _reused(res) -> bool:
-    return any(e.get("event") == "reuse" for e in res.pivot_log)
+def _reused(res, reason: str = "cached_factorization") -> bool:
+    return any(e.get("event") == "reuse" and e.get("reason") == reason for e in res.pivot_log)
 
 
 @pytest.mark.parametrize("problem", PROBLEMS, ids=[p.name for p in PROBLEMS])
@@ -62,6 +62,28 @@ def test_reuse_is_refused_when_the_matrix_changed():
     assert not _reused(out)
     ref = solve(changed)
     assert out.status == ref.status
+    if ref.status == "optimal":
+        assert abs(out.objective - ref.objective) <= 1e-6 * max(1.0, abs(ref.objective))
+
+
+def test_scaling_is_kept_when_only_the_factorization_is_too_old(monkeypatch):
+    """An appended row on a state whose factorization may not be wrapped again: the
+    scaling is still reused (event reason cached_scaling), the LU is fresh, and the
+    answer equals a cold HiGHS solve of the changed model (the reference)."""
+    import service.lp.simplex as simplex_module
+
+    problem = next(p for p in PROBLEMS if p.name == "sc105")
+    lp = read_mps(problem.path)
+    res = solve(lp, SolveOptions(engine="builtin"))
+    changed = one_cut(lp, res, np.random.default_rng(5))
+    basis, _ = remap(res.basis, lp.col_names, lp.row_names, changed)
+    monkeypatch.setattr(simplex_module, "MAX_REUSE_DEPTH", 0)  # every factorization counts as too deep
+    assert not Simplex.reuse_applies(changed, basis, res.state, SolveOptions())
+    assert Simplex.only_rows_appended(changed, res.state)
+    out = reoptimize(changed, basis, SolveOptions(), state=res.state)
+    assert _reused(out, "cached_scaling") and not _reused(out)
+    ref = solve(changed)
+    assert out.status == ref.status and out.fallback is None and out.check["passed"]
     if ref.status == "optimal":
         assert abs(out.objective - ref.objective) <= 1e-6 * max(1.0, abs(ref.objective))
 
