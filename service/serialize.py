@@ -67,8 +67,23 @@ def _name_check(check: dict[str, Any], lp: LinearProgram) -> dict[str, Any]:
     return out
 
 
+_PLAIN = (str, int, type(None))
+
+
+def _plain(entry: dict[str, Any]) -> bool:
+    """True when every value is already a JSON value (the engine's own pivot records)."""
+    for v in entry.values():
+        t = type(v)
+        if t is float:
+            if not math.isfinite(v):
+                return False
+        elif t not in _PLAIN:
+            return False
+    return True
+
+
 def _name_log_entry(entry: dict[str, Any], lp: LinearProgram) -> dict[str, Any]:
-    out = jsonable(entry)
+    out = dict(entry) if _plain(entry) else jsonable(entry)
     for key in ("leaving", "entering"):
         value = out.get(key)
         kind = out.get(f"{key}_kind")

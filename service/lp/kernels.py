@@ -349,6 +349,31 @@ def lu_solve_t(Lp, Li, Lx, Up, Ui, Ux, Ud, src, dst, e):
     return h
 
 
+@numba.njit(**_JIT)
+def append_rows_csc(indptr, indices, data, add_indptr, add_indices, add_data, m0):
+    """CSC arrays of A with rows appended: A (m0 rows) and the new rows N, both
+    CSC over the same columns, N's row numbers counted from 0. Each column is
+    A's entries followed by N's (shifted by m0), so row order stays sorted."""
+    n = indptr.size - 1
+    nnz = indptr[n] + add_indptr[n]
+    out_ptr = np.empty(n + 1, indptr.dtype)
+    out_idx = np.empty(nnz, indices.dtype)
+    out_val = np.empty(nnz)
+    k = 0
+    out_ptr[0] = 0
+    for j in range(n):
+        for p in range(indptr[j], indptr[j + 1]):
+            out_idx[k] = indices[p]
+            out_val[k] = data[p]
+            k += 1
+        for p in range(add_indptr[j], add_indptr[j + 1]):
+            out_idx[k] = add_indices[p] + m0
+            out_val[k] = add_data[p]
+            k += 1
+        out_ptr[j + 1] = k
+    return out_ptr, out_idx, out_val
+
+
 def warm_up() -> None:
     """Compile (or load from the cache) every kernel on tiny inputs, so the
     first real request does not pay for it."""
@@ -366,6 +391,8 @@ def warm_up() -> None:
     flip_column(np.array([0, 1], dtype=np.int32), np.array([0], dtype=np.int32), np.ones(1), 1, 3,
                 idx[:2], np.ones(2))  # fmt: skip
     eta_ftran(np.ones((4, 2)), idx[:1], np.ones(1), np.array([0, 1], dtype=np.int64), idx[1:2], v[:1], 1)
+    i32 = np.array([0, 1], dtype=np.int32)
+    append_rows_csc(i32, i32[:1], np.ones(1), i32, i32[:1], np.ones(1), 1)
     f = gather_rows(np.ones((4, 2)), idx)
     scatter_rows(f, idx)
     ptr = np.arange(5, dtype=np.int64)

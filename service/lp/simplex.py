@@ -264,7 +264,13 @@ class Simplex:
             has = np.isfinite(rmax)
             R_new[has] = np.exp2(np.round(-0.5 * (rmax[has] + rmin[has])))
             new_block = sp.csr_matrix((A.data[~top] * S[cols] * R_new[rows], (rows, cols)), shape=(m - m0, n))
-            self.A = sp.vstack([state.A_scaled, new_block], format="csc")
+            old_A, add = state.A_scaled, new_block.tocsc()
+            add.sort_indices()
+            ptr, idx, val = kernels.append_rows_csc(
+                old_A.indptr, old_A.indices, old_A.data,
+                add.indptr.astype(old_A.indptr.dtype), add.indices.astype(old_A.indices.dtype), add.data, m0,
+            )  # fmt: skip
+            self.A = sp.csc_matrix((val, idx, ptr), shape=(m, n))
         else:
             new_block = None
             self.A = state.A_scaled
