@@ -1,6 +1,6 @@
 """End-to-end benchmark: PATCH over HTTP against scipy's cold solve of the changed model.
 
-    python -m tests.bench.bench_http [--rows 10000] [--cuts lane,lane,outage]
+    python -m tests.bench.bench_http [--rows 10000] [--cuts lane,lane,outage] [--full]
 
 Starts its own redis-server (AOF, appendfsync always) and gunicorn on free
 loopback ports, POSTs a generated supply-chain model as MPS, then PATCHes one
@@ -53,7 +53,11 @@ def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--rows", type=int, default=10000)
     parser.add_argument("--cuts", default="lane,lane,outage", help="kinds of rows to add, in order")
+    parser.add_argument(
+        "--full", action="store_true", help="ask for the default (whole) answer, not ?fields=solve"
+    )
     args = parser.parse_args()
+    query = "" if args.full else "?fields=solve"
     svc = start_service(Path(tempfile.mkdtemp(prefix="hb-bench-")), worker=False, appendonly=True)
     try:
 
@@ -63,7 +67,9 @@ def main() -> int:
             start = time.perf_counter()
             with urllib.request.urlopen(req, timeout=600) as resp:
                 data = resp.read()
-                return time.perf_counter() - start, json.loads(data), resp.headers.get("Server-Timing")
+                took = time.perf_counter() - start
+                timing = f"{resp.headers.get('Server-Timing')}; answer {len(data) / 1e6:.2f} MB"
+                return took, json.loads(data), timing
 
         lp = sized(args.rows, seed=0)
         print(f"model: {lp.m} rows x {lp.n} columns, {lp.A.nnz} nonzeros")
@@ -78,7 +84,7 @@ def main() -> int:
             bounds["upper"] = None if not np.isfinite(cut.upper) else float(cut.upper)
             patch = {"constraints": {cut.name: {"terms": terms, **bounds}}}
             took, res, timing = call(
-                "PATCH", f"/v1/models/{model_id}?fields=solve", json.dumps(patch).encode(), "application/merge-patch+json"
+                "PATCH", f"/v1/models/{model_id}{query}", json.dumps(patch).encode(), "application/merge-patch+json"
             )
             lp = with_rows(lp, [cut])
             cold, objective = linprog_seconds(lp)
