@@ -191,38 +191,10 @@ def moved_indices(new: np.ndarray | None, old: np.ndarray | None) -> np.ndarray:
     return np.flatnonzero(moved).astype(np.int32)
 
 
-def _json_tokens(values: list) -> list[bytes]:
-    """Each value of a list of numbers, None and comma-free strings as its JSON text."""
-    return orjson.dumps(values)[1:-1].split(b",") if values else []
-
-
-def json_object_map(names: list[str], fields: tuple[tuple[str, list], ...]) -> orjson.Fragment:
-    """``{name: {field: value, ...}, ...}`` as finished JSON text, for plans with
-    tens of thousands of entries: orjson encodes each column of values (and the
-    names) in one call and the pieces are interleaved, instead of building a
-    dict per entry. Splitting the encoded names on '","' is exact: a quote
-    inside a name is always escaped, so that sequence only separates names.
-    Field values must be numbers, None or strings without commas."""
-    n = len(names)
-    if n == 0:
-        return orjson.Fragment(b"{}")
-    stride = 2 * len(fields) + 2
-    parts: list[bytes] = [b""] * (n * stride)
-    parts[0::stride] = orjson.dumps(names)[2:-2].split(b'","')
-    for f, (label, values) in enumerate(fields):
-        lead = b'":{"' if f == 0 else b',"'
-        parts[1 + 2 * f :: stride] = [lead + label.encode() + b'":'] * n
-        parts[2 + 2 * f :: stride] = _json_tokens(values)
-    parts[stride - 1 :: stride] = [b'},"'] * n
-    return orjson.Fragment(b'{"' + b"".join(parts)[:-2] + b"}")
-
-
 def solution_json(
     lp: LinearProgram, sol: Solution, basis: Basis | None, view: str, record: VersionRecord | None = None
 ) -> dict[str, Any] | None:
-    """The plan by name: value, reduced cost, basis status per variable; activity, shadow price per row.
-
-    The two maps are finished JSON (orjson.Fragment), ready for orjson.dumps."""
+    """The plan by name: value, reduced cost, basis status per variable; activity, shadow price per row."""
     if view == "none" or sol.x is None:
         return None
     n, m = lp.n, lp.m
@@ -245,18 +217,17 @@ def solution_json(
 
     col_status = _STATUS_LOOKUP[basis.col_status[cols]].tolist() if basis is not None else [None] * cols.size
     row_status = _STATUS_LOOKUP[basis.row_status[rows]].tolist() if basis is not None else [None] * rows.size
-    full = view == "full"
-    col_names = lp.col_names if full else [lp.col_names[j] for j in cols.tolist()]
-    row_names = lp.row_names if full else [lp.row_names[i] for i in rows.tolist()]
-    variables = json_object_map(
-        col_names,
-        (("value", pick(sol.x, cols)), ("reduced_cost", pick(sol.reduced_cost, cols)), ("basis", col_status)),
-    )
-    constraints = json_object_map(
-        row_names,
-        (("activity", pick(sol.row_activity, rows)), ("shadow_price", pick(sol.shadow_price, rows)),
-         ("basis", row_status)),
-    )  # fmt: skip
+    col_names, row_names = lp.col_names, lp.row_names
+    variables = {
+        col_names[j]: {"value": v, "reduced_cost": d, "basis": s}
+        for j, v, d, s in zip(cols.tolist(), pick(sol.x, cols), pick(sol.reduced_cost, cols), col_status)
+    }
+    constraints = {
+        row_names[i]: {"activity": a, "shadow_price": y, "basis": s}
+        for i, a, y, s in zip(
+            rows.tolist(), pick(sol.row_activity, rows), pick(sol.shadow_price, rows), row_status
+        )
+    }
     return {"variables": variables, "constraints": constraints}
 
 
