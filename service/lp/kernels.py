@@ -297,24 +297,32 @@ def lu_solve(Lp, Li, Lx, Up, Ui, Ux, Ud, src, dst, a):
     for i in range(m):
         for c in range(k):
             z[i, c] = a[src[i], c]
-    for j in range(m):  # L (unit diagonal)
+    zj = np.empty(k)
+    for j in range(m):  # L (unit diagonal): one pass over column j for all right-hand sides
+        nonzero = False
         for c in range(k):
-            zj = z[j, c]
-            if zj != 0.0:
-                for p in range(Lp[j], Lp[j + 1]):
-                    i = Li[p]
-                    if i != j:
-                        z[i, c] -= Lx[p] * zj
+            zj[c] = z[j, c]
+            nonzero = nonzero or zj[c] != 0.0
+        if nonzero:
+            for p in range(Lp[j], Lp[j + 1]):
+                i = Li[p]
+                if i != j:
+                    lij = Lx[p]
+                    for c in range(k):
+                        z[i, c] -= lij * zj[c]
     for j in range(m - 1, -1, -1):  # U
+        nonzero = False
         for c in range(k):
-            zj = z[j, c]
-            if zj != 0.0:
-                zj = zj / Ud[j]
-                z[j, c] = zj
-                for p in range(Up[j], Up[j + 1]):
-                    i = Ui[p]
-                    if i != j:
-                        z[i, c] -= Ux[p] * zj
+            zj[c] = z[j, c] / Ud[j]
+            z[j, c] = zj[c]
+            nonzero = nonzero or zj[c] != 0.0
+        if nonzero:
+            for p in range(Up[j], Up[j + 1]):
+                i = Ui[p]
+                if i != j:
+                    uij = Ux[p]
+                    for c in range(k):
+                        z[i, c] -= uij * zj[c]
     v = np.empty((m, k))
     for i in range(m):
         for c in range(k):
