@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import gc
 import logging
 import os
 import re
@@ -91,7 +92,20 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     # compile (first process on the machine) or load the engine's compiled loops
     # now, so no request pays for it
     kernels.warm_up()
+    _tune_gc()
     return app
+
+
+def _tune_gc() -> None:
+    """Collect reference cycles less often. A PATCH allocates tens of thousands
+    of short-lived containers (the plan by name, the change report), which under
+    Python's default thresholds (700, 10, 10) set off full collections that walk
+    every cached version: measured 25% of a 10,000-row PATCH with the whole
+    plan in the answer, 8% of a 2,000-row one. The engine and the service make
+    few cycles, so collecting after 50,000 net allocations instead of 700 costs
+    little memory; objects alive at start-up are frozen out of the scans."""
+    gc.set_threshold(50_000, 20, 100)
+    gc.freeze()
 
 
 def _register_request_hooks(app: Flask) -> None:
