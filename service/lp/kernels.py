@@ -262,54 +262,39 @@ def eta_btran(h, rows, pivots, starts, idx, vals, count):
         h[r] = (h[r] - acc) / pivots[e]
 
 
-@numba.njit(**_JIT)
-def gather_rows(a, perm):
-    """out[i, c] = a[perm[i], c], in Fortran order (what SuperLU's solve takes)."""
-    m, k = a.shape
-    out = np.empty((k, m)).T
-    for c in range(k):
-        for i in range(m):
-            out[i, c] = a[perm[i], c]
-    return out
-
-
-@numba.njit(**_JIT)
-def scatter_rows(src, perm):
-    """out[perm[i], c] = src[i, c], in C order."""
-    m, k = src.shape
-    out = np.empty((m, k))
-    for c in range(k):
-        for i in range(m):
-            out[perm[i], c] = src[i, c]
-    return out
+@numba.njit(inline="always", **_JIT)
+def _spread(z, zj, ptr, idx, val, j):
+    """z[i, :] -= M[i, j] * zj for the off-diagonal entries of column j of M (CSC)."""
+    for p in range(ptr[j], ptr[j + 1]):
+        i = idx[p]
+        if i != j:
+            mij = val[p]
+            for c in range(zj.size):
+                z[i, c] -= mij * zj[c]
 
 
 @numba.njit(**_JIT)
 def lu_solve(Lp, Li, Lx, Up, Ui, Ux, Ud, src, dst, a):
     """Solve B v = a for each column of a (m x k) with B's LU factors.
 
-    The factors satisfy B[src[i], :] ... = L U up to the column order dst:
-    z = a[src], L U u = z, v[dst] = u. Column-oriented substitution skips
-    every column of L and U whose multiplier is zero, so a sparse right-hand
-    side (a pivot column, a unit vector) costs only what it touches."""
+    The factorization's row and column orders are folded into src and dst:
+    z = a[src], L U u = z, v[dst] = u. Column-oriented substitution, one pass
+    over each column of L and U for all right-hand sides, skips every column
+    whose multipliers are all zero, so a sparse right-hand side (a pivot
+    column, a unit vector) costs only what it touches."""
     m, k = a.shape
     z = np.empty((m, k))
     for i in range(m):
         for c in range(k):
             z[i, c] = a[src[i], c]
     zj = np.empty(k)
-    for j in range(m):  # L (unit diagonal): one pass over column j for all right-hand sides
+    for j in range(m):  # L, unit diagonal
         nonzero = False
         for c in range(k):
             zj[c] = z[j, c]
             nonzero = nonzero or zj[c] != 0.0
         if nonzero:
-            for p in range(Lp[j], Lp[j + 1]):
-                i = Li[p]
-                if i != j:
-                    lij = Lx[p]
-                    for c in range(k):
-                        z[i, c] -= lij * zj[c]
+            _spread(z, zj, Lp, Li, Lx, j)
     for j in range(m - 1, -1, -1):  # U
         nonzero = False
         for c in range(k):
@@ -317,12 +302,7 @@ def lu_solve(Lp, Li, Lx, Up, Ui, Ux, Ud, src, dst, a):
             z[j, c] = zj[c]
             nonzero = nonzero or zj[c] != 0.0
         if nonzero:
-            for p in range(Up[j], Up[j + 1]):
-                i = Ui[p]
-                if i != j:
-                    uij = Ux[p]
-                    for c in range(k):
-                        z[i, c] -= uij * zj[c]
+            _spread(z, zj, Up, Ui, Ux, j)
     v = np.empty((m, k))
     for i in range(m):
         for c in range(k):
@@ -401,8 +381,6 @@ def warm_up() -> None:
     eta_ftran(np.ones((4, 2)), idx[:1], np.ones(1), np.array([0, 1], dtype=np.int64), idx[1:2], v[:1], 1)
     i32 = np.array([0, 1], dtype=np.int32)
     append_rows_csc(i32, i32[:1], np.ones(1), i32, i32[:1], np.ones(1), 1)
-    f = gather_rows(np.ones((4, 2)), idx)
-    scatter_rows(f, idx)
     ptr = np.arange(5, dtype=np.int64)
     lu_solve(ptr, idx, np.ones(4), ptr, idx, np.ones(4), np.ones(4), idx, idx, np.ones((4, 2)))
     lu_solve_t(ptr, idx, np.ones(4), ptr, idx, np.ones(4), np.ones(4), idx, idx, np.ones(4))
