@@ -18,7 +18,7 @@ import numpy as np
 
 from service import lp as engine
 from service.cache import VersionCache
-from service.document import ChangeSet, apply_patch, to_document
+from service.document import ChangeSet, apply_patch, name_index, to_document
 from service.lp.basis import Basis
 from service.lp.model import LinearProgram
 from service.limits import LimitBook, Limits, check_model
@@ -141,6 +141,10 @@ class ModelService:
         else:  # pragma: no cover - 80 random bits colliding three times
             raise ModelExists(model_id)
         timings["store"] = time.perf_counter() - t
+        # the name -> position maps the first PATCH needs (then carried from version to
+        # version): built here, where a cold solve is paid anyway, not in the first change
+        name_index(rec.lp, "col_names")
+        name_index(rec.lp, "row_names")
         self.cache.put(model_id, 1, rec, engine_state=getattr(res, "state", None))
         observe_solve(rec.result["solve"])
         return Outcome(head, rec, created=True, timings=timings)
