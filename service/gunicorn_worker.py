@@ -11,8 +11,10 @@ if it has taken none for BUSY_ACCEPT_PACE seconds per connection it already
 holds. Otherwise the connection waits in the kernel's accept queue for a
 process that is idle or less loaded: connections spread evenly, and when every
 process is busy a new client still gets in within BUSY_ACCEPT_PACE times the
-connections per process (0.2 s for 16 clients on 4 processes). Kept-alive
-connections are never refused; only the taking of new ones is paced.
+connections per process (0.2 s for 16 clients on 4 processes), checked when
+the process next wakes (a request finishing, or gunicorn's one-second poll).
+Kept-alive connections are never refused; only the taking of new ones is
+paced.
 
 Keeping each client on one process also keeps its model's version and
 factorization in that process's cache (service/cache.py), which is why
@@ -51,8 +53,10 @@ class BalancedThreadWorker(ThreadWorker):
         self._connection_cap = value
 
     def accept(self, listener) -> None:
-        self._last_accept = time.monotonic()
+        before = self.nr_conns
         super().accept(listener)
+        if self.nr_conns > before:  # another process may have taken the connection first
+            self._last_accept = time.monotonic()
 
     def enqueue_req(self, conn) -> None:
         self._busy += 1

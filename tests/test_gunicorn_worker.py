@@ -57,3 +57,17 @@ def test_finished_requests_free_the_worker_again():
     assert not _can_accept(w)
     w._busy -= 1  # what finish_request does before handing the connection back
     assert _can_accept(w)
+
+
+def test_an_accept_lost_to_another_process_does_not_restart_the_pause():
+    """Several processes wake for one connection; those that find none must not pause again."""
+    import socket
+
+    w = _worker(threads=1)
+    with socket.socket() as listener:
+        listener.bind(("127.0.0.1", 0))
+        listener.listen()
+        listener.setblocking(False)
+        w.accept(listener)  # nothing is waiting: EAGAIN, no connection taken
+    assert w.nr_conns == 0
+    assert w._last_accept == 0.0

@@ -8,9 +8,9 @@ whole-vector passes with temporaries, plus the interpreter's overhead per
 call; at 10,000 rows that was about two thirds of a pivot's time. Here each
 step is one compiled pass over its data.
 
-Every kernel computes exactly what the numpy expression it replaces computed
-(same candidates, same tie-breaking: the first index wins), so the pivot
-sequence does not depend on which form ran. ``nogil`` lets gunicorn threads
+Every kernel makes the same choices as the numpy expression it replaced (same
+candidates, same tie-breaking: the first index wins); sums may differ in the
+last bits where the order of addition changed. ``nogil`` lets gunicorn threads
 solve side by side; ``cache`` keeps the machine code under __pycache__ (or
 NUMBA_CACHE_DIR) so only the first process on a machine pays to compile.
 

@@ -63,17 +63,6 @@ _ROW_RULES = {
     "smallest_index": kernels.RULE_SMALLEST_INDEX,
 }
 _NO_SHIFT = np.zeros(0)
-_BASIS_KEYS = np.zeros(0, dtype=np.int64)
-
-
-def _basis_keys(size: int) -> np.ndarray:
-    """Fixed random 63-bit keys per variable index: the XOR of the basic
-    variables' keys identifies a basis (Zobrist hashing), cheap enough to
-    notice a degenerate stretch that has come back to a basis it visited."""
-    global _BASIS_KEYS
-    if _BASIS_KEYS.size < size:
-        _BASIS_KEYS = np.random.default_rng(1954).integers(1, 2**63 - 1, size=max(size, 1024), dtype=np.int64)
-    return _BASIS_KEYS[:size]
 
 
 class NumericalTrouble(RuntimeError):
@@ -192,7 +181,7 @@ class Simplex:
         self.events: list[dict] = []
         self._col_names, self._row_names = lp.col_names, lp.row_names  # for pivot records
         self.rng = np.random.default_rng(20261201)
-        self._visited: set[int] = set()  # bases seen since the objective last moved
+        self._visited: set[int] = set()  # vertices seen since the objective last moved
 
     @staticmethod
     def reuse_applies(
@@ -432,9 +421,11 @@ class Simplex:
         }
 
     def revisits_basis(self) -> bool:
-        """Record the current basis of a degenerate stretch; True when it was
-        visited before in the same stretch, i.e. the pivots are cycling."""
-        key = int(np.bitwise_xor.reduce(_basis_keys(self.N)[self.basic_idx]))
+        """Record the current vertex of a degenerate stretch; True when it was
+        visited before in the same stretch, i.e. the pivots are cycling. The
+        vertex is the status of every variable (the basic set and the bound
+        each nonbasic sits at: bound flips without a basis change count)."""
+        key = hash(self.status.tobytes())
         if key in self._visited:
             self._visited.clear()
             return True
