@@ -16,6 +16,26 @@ from conftest import free_port, start_redis, stop_redis
 
 ROOT = Path(__file__).resolve().parents[1]
 LIVE_KEY = "live-e2e-key-0123456789abcdef"
+# the service's command line as deploy/ runs it, from the repository root
+GUNICORN = [sys.executable, "-m", "gunicorn", "-c", str(ROOT / "deploy" / "gunicorn.conf.py"), "service.wsgi:app"]
+
+
+def start_gunicorn(env: dict[str, str], out) -> subprocess.Popen:
+    """gunicorn with deploy/gunicorn.conf.py; its output (both streams) to ``out``."""
+    return subprocess.Popen(GUNICORN, cwd=ROOT, env=env, stdout=out, stderr=subprocess.STDOUT)
+
+
+def wait_ready(base: str, api: subprocess.Popen, timeout: float = 60) -> bool:
+    """True once ``base``/readyz answers; False if gunicorn exits or ``timeout`` passes first."""
+    deadline = time.monotonic() + timeout
+    while True:
+        try:
+            urllib.request.urlopen(base + "/readyz", timeout=1)
+            return True
+        except OSError:
+            if api.poll() is not None or time.monotonic() > deadline:
+                return False
+            time.sleep(0.2)
 
 
 @dataclass
@@ -50,20 +70,7 @@ def start_service(workdir: Path, worker: bool = True, appendonly: bool = False) 
     }
     log = workdir / "service.log"
     with open(log, "wb") as out:
-        api = subprocess.Popen(
-            [
-                sys.executable,
-                "-m",
-                "gunicorn",
-                "-c",
-                str(ROOT / "deploy" / "gunicorn.conf.py"),
-                "service.wsgi:app",
-            ],
-            cwd=ROOT,
-            env=env,
-            stdout=out,
-            stderr=subprocess.STDOUT,
-        )
+        api = start_gunicorn(env, out)
         work = (
             subprocess.Popen(
                 [sys.executable, "-m", "service.worker"],
@@ -77,16 +84,10 @@ def start_service(workdir: Path, worker: bool = True, appendonly: bool = False) 
         )
     svc = LiveService(f"http://127.0.0.1:{port}", LIVE_KEY, redis_url, redis_dir, redis_port, redis_proc, api,
                       work, log)  # fmt: skip
-    deadline = time.monotonic() + 60
-    while True:
-        try:
-            urllib.request.urlopen(svc.base + "/readyz", timeout=1)
-            return svc
-        except OSError:
-            if api.poll() is not None or time.monotonic() > deadline:
-                stop_service(svc)
-                pytest.fail("gunicorn did not become ready:\n" + log.read_text()[-3000:])
-            time.sleep(0.2)
+    if not wait_ready(svc.base, api):
+        stop_service(svc)
+        pytest.fail("gunicorn did not become ready:\n" + log.read_text()[-3000:])
+    return svc
 
 
 def _stop(proc: subprocess.Popen | None) -> None:

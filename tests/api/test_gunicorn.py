@@ -6,13 +6,13 @@ import json
 import os
 import signal
 import subprocess
-import sys
 import time
 import urllib.request
 from pathlib import Path
 
 import pytest
 from conftest import free_port, reference_objective, start_redis, stop_redis
+from live_service import start_gunicorn, wait_ready
 
 from service import demo
 
@@ -42,32 +42,12 @@ def served(tmp_path, request):
         **getattr(request, "param", {}),  # extra settings from an indirect parametrization
     }
     with open(log_path, "wb") as log:
-        api = subprocess.Popen(
-            [
-                sys.executable,
-                "-m",
-                "gunicorn",
-                "-c",
-                str(ROOT / "deploy" / "gunicorn.conf.py"),
-                "service.wsgi:app",
-            ],
-            cwd=ROOT,
-            env=env,
-            stdout=log,
-            stderr=subprocess.STDOUT,
-        )
+        api = start_gunicorn(env, log)
     base = f"http://127.0.0.1:{port}"
-    deadline = time.monotonic() + 60
-    while True:
-        try:
-            urllib.request.urlopen(base + "/readyz", timeout=1)
-            break
-        except OSError:
-            if api.poll() is not None or time.monotonic() > deadline:
-                api.kill()
-                stop_redis(redis_proc)
-                pytest.fail("gunicorn did not become ready:\n" + log_path.read_text()[-3000:])
-            time.sleep(0.2)
+    if not wait_ready(base, api):
+        api.kill()
+        stop_redis(redis_proc)
+        pytest.fail("gunicorn did not become ready:\n" + log_path.read_text()[-3000:])
     state = {
         "base": base,
         "log": log_path,

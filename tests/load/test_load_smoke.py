@@ -10,13 +10,11 @@ import json
 import os
 import signal
 import subprocess
-import sys
-import time
-import urllib.request
 
 import numpy as np
 import pytest
 from conftest import free_port, start_redis, stop_redis
+from live_service import start_gunicorn, wait_ready
 
 from service.scenarios.supply_chain import cutting_capacity_row, sized
 from tests.load.peer import solve_document
@@ -57,19 +55,9 @@ def test_short_load_run_has_no_errors(tmp_path):
            "HOTBASIS_API_KEYS": f"load:{KEY}", "PYTHONPATH": str(ROOT),
            # one tenant drives every client: measure the service, not the per-tenant rate limit
            "HOTBASIS_LIMIT_RATE": "0"}  # fmt: skip
-    api = subprocess.Popen(
-        [sys.executable, "-m", "gunicorn", "-c", str(ROOT / "deploy" / "gunicorn.conf.py"), "service.wsgi:app"],
-        cwd=ROOT, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
-    )  # fmt: skip
+    api = start_gunicorn(env, subprocess.DEVNULL)
     try:
-        deadline = time.monotonic() + 60
-        while True:
-            try:
-                urllib.request.urlopen(f"http://127.0.0.1:{port}/readyz", timeout=1)
-                break
-            except OSError:
-                assert api.poll() is None and time.monotonic() < deadline, "gunicorn did not start"
-                time.sleep(0.2)
+        assert wait_ready(f"http://127.0.0.1:{port}", api), "gunicorn did not start"
         figures = run_locust(
             "HotbasisClient", f"http://127.0.0.1:{port}", 4, 14,
             {**env, "LOAD_API_KEY": KEY, "LOAD_ROWS": "500"},
