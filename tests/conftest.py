@@ -15,6 +15,20 @@ import redis
 TENANT_KEYS = {"acme": "acme-test-key-0123456789", "globex": "globex-test-key-9876543210"}
 
 
+# the pivot log record of the HTTP contract (issue "REST service"); the engine writes these fields
+PIVOT_FIELDS = {
+    "iteration",
+    "algorithm",
+    "leaving",
+    "entering",
+    "pivot",
+    "step",
+    "objective",
+    "primal_infeasibility",
+    "dual_infeasibility",
+    "bound_flips",
+}
+
 def free_port() -> int:
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
         s.bind(("127.0.0.1", 0))

@@ -6,7 +6,7 @@ import threading
 
 import orjson
 import pytest
-from conftest import auth, juice_network, reference_objective, snapshot
+from conftest import PIVOT_FIELDS, auth, juice_network, reference_objective, snapshot
 
 MERGE = "application/merge-patch+json"
 
@@ -226,19 +226,6 @@ def test_hot_versions_keep_the_engine_state_for_the_next_change(app, client):
     assert body["solve"]["warm"] is True and body["version"] == 3
     assert body["objective"] == pytest.approx(reference_objective(current_doc(client, mid)), rel=1e-9)
 
-
-PIVOT_FIELDS = {
-    "iteration",
-    "algorithm",
-    "leaving",
-    "entering",
-    "pivot",
-    "step",
-    "objective",
-    "primal_infeasibility",
-    "dual_infeasibility",
-    "bound_flips",
-}
 
 
 def test_pivot_log_holds_only_pivots_and_engine_events_go_to_solve(client):

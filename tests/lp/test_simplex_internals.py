@@ -17,6 +17,7 @@ from functools import lru_cache
 import numpy as np
 import pytest
 import scipy.sparse as sp
+from conftest import PIVOT_FIELDS
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -35,18 +36,6 @@ SMALL = ["afiro", "sc50a", "adlittle", "blend", "kb2", "share2b"]
 DUAL_RULES = ["steepest_edge", "dantzig", "smallest_index"]
 PRIMAL_RULES = ["devex", "dantzig"]
 RULES = list(itertools.product(DUAL_RULES, PRIMAL_RULES))
-RECORD_KEYS = {
-    "iteration",
-    "algorithm",
-    "leaving",
-    "entering",
-    "pivot",
-    "step",
-    "objective",
-    "primal_infeasibility",
-    "dual_infeasibility",
-    "bound_flips",
-}
 
 
 @lru_cache(maxsize=None)
@@ -155,7 +144,7 @@ def test_pivot_log_records(name):
     pivots = pivot_records(res)
     assert len(pivots) == res.pivots and res.log_dropped == 0
     for rec in pivots:
-        assert RECORD_KEYS <= rec.keys()
+        assert PIVOT_FIELDS <= rec.keys()
         assert rec["algorithm"] in ("dual", "primal")
         assert rec["entering"] in netlib(name).col_names + netlib(name).row_names
         assert rec["bound_flips"] >= 0
