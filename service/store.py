@@ -109,6 +109,9 @@ class VersionRecord:
     created_at: float = field(default_factory=time.time)
     moved_cols: np.ndarray | None = None  # variables whose value moved against the previous version
     moved_rows: np.ndarray | None = None  # constraints whose activity or shadow price moved
+    # not stored: the digests of this version's pieces by field, known once it was written or read;
+    # the next commit sends only the pieces this version does not already hold
+    digests: dict[str, list[str]] | None = field(default=None, repr=False, compare=False)
 
 
 @dataclass
@@ -159,25 +162,74 @@ COL_PIECE = 1024  # columns per piece (costs, column bounds and names, values, r
 Fields = dict[str, "bytes | list[bytes]"]  # a list value is stored piecewise
 
 
-def _pieces(a: np.ndarray, dtype: np.dtype, size: int) -> list[bytes]:
+# A piece is its bytes, or (carried over from the previous version) the hex digest of a blob that
+# version already stores with exactly these bytes: see split_blobs.
+Piece = "bytes | str"
+
+
+def _carried(old_digests: list[str] | None, old_count: int) -> list[str] | None:
+    """The previous version's digests for a field, when they are its pieces one for one (a version
+    of the whole-array layout had one blob per field, which is one piece only for small fields)."""
+    return old_digests if old_digests is not None and len(old_digests) == old_count else None
+
+
+def _pieces(
+    a: np.ndarray, dtype: np.dtype, size: int, old: np.ndarray | None = None, old_digests: list[str] | None = None
+) -> list[Piece]:
     buf = np.ascontiguousarray(a, dtype=dtype)
-    return [buf[i : i + size].tobytes() for i in range(0, buf.size, size)]
+    out: list[Piece] = [buf[i : i + size].tobytes() for i in range(0, buf.size, size)]
+    if old is not None:
+        prev = np.ascontiguousarray(old, dtype=dtype)
+        known = _carried(old_digests, -(-prev.size // size))
+        for k in range(min(len(out), len(known or ()))):
+            if out[k] == prev[k * size : (k + 1) * size].tobytes():  # bytewise: -0.0 is not 0.0
+                out[k] = known[k]
+    return out
 
 
-def _name_pieces(names: list[str], size: int) -> list[bytes]:
-    return ["\n".join(names[i : i + size]).encode("utf-8") for i in range(0, len(names), size)]
+def _name_pieces(
+    names: list[str], size: int, old: list[str] | None = None, old_digests: list[str] | None = None
+) -> list[Piece]:
+    known = _carried(old_digests, -(-len(old) // size)) if old is not None else None
+    out: list[Piece] = []
+    for k, i in enumerate(range(0, len(names), size)):
+        part = names[i : i + size]
+        if known is not None and k < len(known) and part == old[i : i + size]:
+            out.append(known[k])
+        else:
+            out.append("\n".join(part).encode("utf-8"))
+    return out
 
 
 def _whole(value: "bytes | list[bytes]") -> bytes:
     return b"".join(value) if isinstance(value, list) else value
 
 
-def _row_pieces(A) -> list[bytes]:
+def _row_pieces(A, old=None, old_digests: list[str] | None = None) -> list[Piece]:
     """The matrix by rows, ROW_PIECE rows a piece: [rows, nnz] (int32), the
-    piece's own row pointers (int32), column indices (int32), values (float64)."""
-    R = A.tocsr()
+    piece's own row pointers (int32), column indices (int32), values (float64).
+
+    When ``A`` is ``old`` (the previous version's matrix, whose pieces have
+    ``old_digests``) with rows appended, the pieces of old full row blocks are
+    carried over and only the rows from the first incomplete block on are encoded.
+    """
+    import scipy.sparse as sp
+
+    m = A.shape[0]
+    first = 0
+    known = _carried(old_digests, -(-old.shape[0] // ROW_PIECE)) if old is not None else None
+    if known is not None and _rows_appended(A, old):
+        first = old.shape[0] // ROW_PIECE  # the old full blocks
+    r_start = first * ROW_PIECE
+    if r_start:
+        C = A.tocsc()
+        tail = C.indices >= r_start  # the tail rows' entries, column by column
+        cols = np.repeat(np.arange(A.shape[1]), np.diff(C.indptr))[tail]
+        R = sp.csr_matrix((C.data[tail], (C.indices[tail] - r_start, cols)), shape=(m - r_start, A.shape[1]))
+    else:
+        R = A.tocsr()
     R.sort_indices()  # one byte form for one matrix, so equal pieces share a blob
-    out = []
+    out: list[Piece] = list(known[:first]) if first else []
     for r0 in range(0, R.shape[0], ROW_PIECE):
         r1 = min(R.shape[0], r0 + ROW_PIECE)
         p0, p1 = int(R.indptr[r0]), int(R.indptr[r1])
@@ -188,6 +240,21 @@ def _row_pieces(A) -> list[bytes]:
             + _buf(R.data[p0:p1], F8)
         )
     return out
+
+
+def _rows_appended(A, old) -> bool:
+    """True when ``A`` (CSC, sorted indices) is ``old`` with rows appended below."""
+    A, old = A.tocsc(), old.tocsc()
+    m0 = old.shape[0]
+    if old.shape[1] != A.shape[1] or A.shape[0] < m0 or not (A.has_sorted_indices and old.has_sorted_indices):
+        return False
+    top = A.indices < m0
+    counted = np.concatenate([[0], np.cumsum(top)])
+    return bool(
+        np.array_equal(counted[A.indptr[1:]] - counted[A.indptr[:-1]], np.diff(old.indptr))
+        and np.array_equal(A.indices[top], old.indices)
+        and np.array_equal(A.data[top].view(I8), old.data.view(I8))
+    )
 
 
 def _matrix_from_rows(pieces: list[bytes], m: int, n: int):
@@ -214,7 +281,15 @@ def _matrix_from_rows(pieces: list[bytes], m: int, n: int):
     return R.tocsc()
 
 
-def encode_lp(lp: LinearProgram) -> Fields:
+def encode_lp(lp: LinearProgram, prior: "VersionRecord | None" = None) -> Fields:
+    """The model's fields; with ``prior`` (the previous version, its ``digests`` known), the
+    pieces equal to the previous version's are given as their digests instead of their bytes."""
+    if prior is None or prior.digests is None:
+        return _encode_lp(lp, None, {})
+    return _encode_lp(lp, prior.lp, prior.digests)
+
+
+def _encode_lp(lp: LinearProgram, old: LinearProgram | None, dig: dict[str, list[str]]) -> Fields:
     meta = {
         "m": lp.m,
         "n": lp.n,
@@ -223,17 +298,16 @@ def encode_lp(lp: LinearProgram) -> Fields:
         "offset": lp.offset,
         "name": lp.name,
     }
-    return {
-        "lp.meta": orjson.dumps(meta),
-        "lp.rows": _row_pieces(lp.A),
-        "lp.c": _pieces(lp.c, F8, COL_PIECE),
-        "lp.col_lower": _pieces(lp.col_lower, F8, COL_PIECE),
-        "lp.col_upper": _pieces(lp.col_upper, F8, COL_PIECE),
-        "lp.row_lower": _pieces(lp.row_lower, F8, ROW_PIECE),
-        "lp.row_upper": _pieces(lp.row_upper, F8, ROW_PIECE),
-        "lp.col_names": _name_pieces(lp.col_names, COL_PIECE),
-        "lp.row_names": _name_pieces(lp.row_names, ROW_PIECE),
-    }
+    def was(name: str):
+        return getattr(old, name) if old is not None else None
+
+    out: Fields = {"lp.meta": orjson.dumps(meta), "lp.rows": _row_pieces(lp.A, was("A"), dig.get("lp.rows"))}
+    for name, size in (("c", COL_PIECE), ("col_lower", COL_PIECE), ("col_upper", COL_PIECE),
+                       ("row_lower", ROW_PIECE), ("row_upper", ROW_PIECE)):  # fmt: skip
+        out["lp." + name] = _pieces(getattr(lp, name), F8, size, was(name), dig.get("lp." + name))
+    out["lp.col_names"] = _name_pieces(lp.col_names, COL_PIECE, was("col_names"), dig.get("lp.col_names"))
+    out["lp.row_names"] = _name_pieces(lp.row_names, ROW_PIECE, was("row_names"), dig.get("lp.row_names"))
+    return out
 
 
 def _names_of(value: "bytes | list[bytes]", count: int) -> list[str]:
@@ -282,34 +356,71 @@ _SOLUTION_PIECE = {
 }
 
 
-def encode_record(rec: VersionRecord) -> Fields:
-    out = encode_lp(rec.lp)
+def encode_record(rec: VersionRecord, prior: VersionRecord | None = None) -> Fields:
+    """The version's fields (pieces equal to ``prior``'s as digests, see encode_lp)."""
+    out = encode_lp(rec.lp, prior)
     if rec.basis is not None:
         out["basis"] = rec.basis.to_bytes()
+    carry = prior is not None and prior.digests is not None
+    derived = _derived_arrays(rec.lp, rec.solution)
+    if derived:
+        out["sol.derived"] = ",".join(derived).encode()
     for name in _SOLUTION_FIELDS:
         value = getattr(rec.solution, name)
-        if value is not None:
-            out[f"sol.{name}"] = _pieces(value, F8, _SOLUTION_PIECE[name])
+        if value is not None and name not in derived:
+            old = getattr(prior.solution, name) if carry else None
+            old_digests = prior.digests.get(f"sol.{name}") if carry else None
+            out[f"sol.{name}"] = _pieces(value, F8, _SOLUTION_PIECE[name], old, old_digests)
     if rec.moved_cols is not None:
         out["moved.cols"] = _buf(rec.moved_cols, I4)
     if rec.moved_rows is not None:
         out["moved.rows"] = _buf(rec.moved_rows, I4)
-    out["result"] = orjson.dumps(rec.result)
+    out["result.z"] = zlib.compress(orjson.dumps(rec.result), 1)  # JSON with long names: ~5x smaller
     out["summary"] = orjson.dumps(rec.summary)
     out["created_at"] = repr(rec.created_at).encode()
     out["version"] = str(rec.version).encode()
     return out
 
 
+def _same_bits(a: np.ndarray, b: np.ndarray) -> bool:
+    return a.shape == b.shape and np.array_equal(np.ascontiguousarray(a, F8).view(I8), np.ascontiguousarray(b, F8).view(I8))
+
+
+def _derived_arrays(lp: LinearProgram, sol: Solution) -> list[str]:
+    """The solution arrays that are, bit for bit, what the model gives back from the others: row
+    activities A x and reduced costs c - A^T y (the builtin engine reports exactly these). They are
+    not stored; decode_record recomputes them with the same operations on the same (canonical,
+    sorted) matrix, hence the same numbers. Anything else (HiGHS's own duals) is stored as is."""
+    out: list[str] = []
+    if not lp.A.has_sorted_indices:
+        return out
+    if sol.x is not None and sol.row_activity is not None and _same_bits(sol.row_activity, lp.A @ sol.x):
+        out.append("row_activity")
+    if (
+        sol.shadow_price is not None
+        and sol.reduced_cost is not None
+        and _same_bits(sol.reduced_cost, lp.c - lp.A.T @ sol.shadow_price)
+    ):
+        out.append("reduced_cost")
+    return out
+
+
 def decode_record(f: dict) -> VersionRecord:
-    arrays = [f.get(f"sol.{name}".encode()) for name in _SOLUTION_FIELDS]
-    sol = Solution(*(None if b is None else _arr(_whole(b), F8) for b in arrays))
+    arrays = {name: f.get(f"sol.{name}".encode()) for name in _SOLUTION_FIELDS}
+    values = {name: None if b is None else _arr(_whole(b), F8) for name, b in arrays.items()}
+    lp = decode_lp(f)
+    derived = f.get(b"sol.derived", b"").decode().split(",")
+    if "row_activity" in derived:
+        values["row_activity"] = lp.A @ values["x"]
+    if "reduced_cost" in derived:
+        values["reduced_cost"] = lp.c - lp.A.T @ values["shadow_price"]
+    result = zlib.decompress(f[b"result.z"]) if b"result.z" in f else f[b"result"]
     return VersionRecord(
         version=int(f[b"version"]),
-        lp=decode_lp(f),
+        lp=lp,
         basis=Basis.from_bytes(f[b"basis"]) if b"basis" in f else None,
-        solution=sol,
-        result=orjson.loads(f[b"result"]),
+        solution=Solution(**values),
+        result=orjson.loads(result),
         summary=orjson.loads(f[b"summary"]),
         created_at=float(f[b"created_at"]),
         moved_cols=_arr(f[b"moved.cols"], I4) if b"moved.cols" in f else None,
@@ -333,7 +444,7 @@ _NAME_FIELDS = (b"lp.col_names", b"lp.row_names")
 
 def split_blobs(fields: Fields) -> tuple[dict[str, bytes], dict[str, bytes]]:
     """A version's fields with each piecewise value replaced by its pieces'
-    digests, and the pieces by digest."""
+    digests, and the pieces given as bytes by digest (carried pieces are digests already)."""
     inline: dict[str, bytes] = {}
     blobs: dict[str, bytes] = {}
     for name, value in fields.items():
@@ -342,6 +453,9 @@ def split_blobs(fields: Fields) -> tuple[dict[str, bytes], dict[str, bytes]]:
             continue
         digests = []
         for piece in value:
+            if isinstance(piece, str):  # carried over: a blob the previous version stores
+                digests.append(piece)
+                continue
             digest = hashlib.blake2b(piece, digest_size=16).hexdigest()
             blobs[digest] = piece
             digests.append(digest)
@@ -409,6 +523,142 @@ redis.call('HSET', KEYS[1], 'tokens', tostring(tokens), 'ms', tostring(last))
 redis.call('PEXPIRE', KEYS[1], math.ceil(burst * 1000 / rate) + 1000)
 return {allowed, wait}
 """
+
+
+# The version commit, one round trip: a MULTI/EXEC that first writes the pieces the store may lack
+# (SET of content-addressed blobs) and the new version's fields into a staging hash, then runs this
+# script, which does the compare-and-set on the head's version, the operation id's exactly-once
+# check, the pruning beyond the kept versions and the blobs' reference counts, and moves the staging
+# hash into place. The bulky bytes stay out of the script (Redis copies a script's arguments into
+# Lua at about a microsecond per kilobyte). The script checks everything before its first write; a
+# refusal deletes the staging hash and the sent blobs that nothing counts, so a refused commit leaves
+# the store as it was. Blobs neither sent nor held make it answer "need": the caller sends them.
+#
+# KEYS: head, blob counts, ops, ops by time, staging hash.
+# ARGV: expected version, versions kept, now, operation id or "", stale-ops cutoff, key prefix of
+#       the model ("{hb:<id>}:"), model name, the digests sent (comma-separated).
+COMMIT_LUA = """
+local head, counts_key, ops_key, opt_key, stage = KEYS[1], KEYS[2], KEYS[3], KEYS[4], KEYS[5]
+local expected, keep = tonumber(ARGV[1]), tonumber(ARGV[2])
+local now, op_id, cutoff, prefix, name = ARGV[3], ARGV[4], ARGV[5], ARGV[6], ARGV[7]
+local CHUNK = 500
+local ref_fields = {REF_FIELD_LIST}
+local sent, sent_list = {}, {}
+for d in string.gmatch(ARGV[8], '[^,]+') do
+  if not sent[d] then sent[d] = true; sent_list[#sent_list + 1] = d end
+end
+
+local function counts_of(list)
+  local out = {}
+  for s = 1, #list, CHUNK do
+    local part = {}
+    for k = s, math.min(#list, s + CHUNK - 1) do part[#part + 1] = list[k] end
+    local got = redis.call('HMGET', counts_key, unpack(part))
+    for k = 1, #part do out[part[k]] = tonumber(got[k]) or 0 end
+  end
+  return out
+end
+
+local function refuse(...)
+  redis.call('DEL', stage)
+  local held = counts_of(sent_list)
+  for _, d in ipairs(sent_list) do
+    if held[d] == 0 then redis.call('DEL', prefix .. 'blob:' .. d) end
+  end
+  return {...}
+end
+
+local st = redis.call('HMGET', head, 'version', 'first_version', 'tenant', 'created_at', 'cold_engine')
+if not st[1] then return refuse('missing') end
+if op_id ~= '' then
+  local done = redis.call('HGET', ops_key, op_id)
+  if done then return refuse('applied', done) end
+end
+local version = tonumber(st[1])
+if version ~= expected then return refuse('conflict', st[1]) end
+local old_first = tonumber(st[2])
+local new = version + 1
+local first = math.max(old_first, new - keep + 1)
+
+-- a version counts once for each distinct blob it uses, however many of its pieces share it
+local delta, order = {}, {}
+local function count(vals, by)
+  local seen = {}
+  for k = 1, #ref_fields do
+    if vals[k] then
+      for d in string.gmatch(vals[k], '[^,]+') do
+        if not seen[d] then
+          seen[d] = true
+          local c = delta[d]
+          if c == nil then order[#order + 1] = d; c = 0 end
+          delta[d] = c + by
+        end
+      end
+    end
+  end
+end
+count(redis.call('HMGET', stage, unpack(ref_fields)), 1)
+for old = old_first, first - 1 do
+  count(redis.call('HMGET', prefix .. 'v:' .. old, unpack(ref_fields)), -1)
+end
+
+-- every check before the first write
+local moved = {}
+for _, d in ipairs(order) do
+  if delta[d] ~= 0 then moved[#moved + 1] = d end
+end
+local before = counts_of(moved)
+local need = {}
+for _, d in ipairs(moved) do
+  if before[d] == 0 and delta[d] > 0 and not sent[d] then need[#need + 1] = d end
+end
+if #need > 0 then return refuse('need', table.concat(need, ',')) end
+
+-- the writes
+local set_counts, gone = {}, {}
+for _, d in ipairs(moved) do
+  local after = before[d] + delta[d]
+  if after > 0 then
+    set_counts[#set_counts + 1] = d
+    set_counts[#set_counts + 1] = after
+  else
+    gone[#gone + 1] = d
+  end
+end
+for s = 1, #set_counts, 2 * CHUNK do
+  redis.call('HSET', counts_key, unpack(set_counts, s, math.min(#set_counts, s + 2 * CHUNK - 1)))
+end
+for s = 1, #gone, CHUNK do
+  local last = math.min(#gone, s + CHUNK - 1)
+  redis.call('HDEL', counts_key, unpack(gone, s, last))
+  local keys = {}
+  for k = s, last do keys[#keys + 1] = prefix .. 'blob:' .. gone[k] end
+  redis.call('DEL', unpack(keys))
+end
+-- a sent blob that ends up uncounted (its count was already there and nothing new uses it) goes
+local unused = {}
+for _, d in ipairs(sent_list) do
+  if delta[d] == nil or delta[d] == 0 then unused[#unused + 1] = d end
+end
+local held = counts_of(unused)
+for _, d in ipairs(unused) do
+  if held[d] == 0 then redis.call('DEL', prefix .. 'blob:' .. d) end
+end
+for old = old_first, first - 1 do redis.call('DEL', prefix .. 'v:' .. old) end
+redis.call('RENAME', stage, prefix .. 'v:' .. new)
+redis.call('HSET', head, 'version', new, 'first_version', first, 'updated_at', now, 'name', name)
+if op_id ~= '' then
+  redis.call('HSET', ops_key, op_id, new)
+  redis.call('ZADD', opt_key, now, op_id)
+end
+local stale = redis.call('ZRANGEBYSCORE', opt_key, '-inf', cutoff)
+for s = 1, #stale, CHUNK do
+  local last = math.min(#stale, s + CHUNK - 1)
+  redis.call('HDEL', ops_key, unpack(stale, s, last))
+  redis.call('ZREM', opt_key, unpack(stale, s, last))
+end
+return {'ok', tostring(new), tostring(first), st[3], st[4], st[5] or ''}
+""".replace("REF_FIELD_LIST", ", ".join(f"'{name}'" for name in REF_FIELDS))
 
 
 # ------------------------------------------------------------------------------ connecting
@@ -522,10 +772,6 @@ class Store:
     def _blobrefs(mid: str) -> str:
         return f"{{hb:{mid}}}:blobrefs"
 
-    def _version_refs(self, pipe: Any, mid: str, version: int) -> set[str]:
-        vals = pipe.hmget(self._ver(mid, version), list(REF_FIELDS))
-        return {d for v in vals for d in ref_digests(v)}
-
     def _plan_blobs(
         self, pipe: Any, mid: str, blobs: dict[str, bytes], dropped: list[set[str]]
     ) -> list[tuple[str, Any]]:
@@ -623,7 +869,9 @@ class Store:
             if missing:
                 raise ValueError(f"model {model_id} version {version}: blob {missing[0]} is missing")
             raw[name] = [found[d] for d in digests]  # the pieces in order (one whole blob in old stores)
-        return decode_record(raw)
+        record = decode_record(raw)
+        record.digests = {name.decode(): digests for name, digests in refs.items()}
+        return record
 
     def summaries(self, head: Head) -> list[dict[str, Any]]:
         """Summary of every kept version, oldest first."""
@@ -695,67 +943,68 @@ class Store:
                 pipe.execute()
             except redis.WatchError as exc:
                 raise ModelExists(model_id) from exc
+        record.digests = {k[len(REF) :]: ref_digests(v) for k, v in fields.items() if k.startswith(REF)}
         # the listing lives in the tenant's slot, so it cannot join the transaction above
         self.r.zadd(self._index(tenant), {model_id: now})
         return Head(model_id, tenant, 1, 1, now, now, record.lp.name, cold_engine)
 
     def commit(
-        self, model_id: str, expected_version: int, record: VersionRecord, op_id: str | None = None
+        self,
+        model_id: str,
+        expected_version: int,
+        record: VersionRecord,
+        op_id: str | None = None,
+        prior: VersionRecord | None = None,
     ) -> Head:
         """Store ``record`` as version expected_version + 1 if the model is still at expected_version.
 
+        One script call (COMMIT_LUA) does the compare-and-set, the pruning and
+        the blob counts. ``prior``, the version the caller worked from (with its
+        ``digests``), lets the pieces it already stores be named instead of
+        encoded, hashed and sent.
         Raises VersionConflict when another write came first, AlreadyApplied
         when ``op_id`` was committed before, ModelNotFound when the model is gone.
         """
-        head_key = self._head(model_id)
         now = record.created_at
-        with self.r.pipeline(transaction=True) as pipe:
-            try:
-                pipe.watch(head_key)
-                raw = pipe.hgetall(head_key)
-                head = self._decode_head(model_id, raw)
-                if head is None:
-                    raise ModelNotFound(model_id)
-                if op_id:
-                    done = pipe.hget(self._ops(model_id), op_id)
-                    if done:
-                        raise AlreadyApplied(int(done))
-                if head.version != expected_version:
-                    raise VersionConflict(head.version)
-                new = head.version + 1
-                record.version = new
-                record.summary["version"] = new  # the store, not the caller, numbers versions
-                first = max(head.first_version, new - self.keep + 1)
-                stale_ops = pipe.zrangebyscore(self._opt(model_id), "-inf", now - self.op_ttl)
-                fields, blobs = split_blobs(encode_record(record))
-                dropped = [
-                    self._version_refs(pipe, model_id, old) for old in range(head.first_version, first)
-                ]
-                blob_ops = self._plan_blobs(pipe, model_id, blobs, dropped)
-                pipe.multi()
-                self._queue(pipe, blob_ops)
-                pipe.hset(self._ver(model_id, new), mapping=fields)
-                pipe.hset(
-                    head_key,
-                    mapping={
-                        "version": new,
-                        "first_version": first,
-                        "updated_at": repr(now),
-                        "name": record.lp.name,
-                    },
-                )
-                for old in range(head.first_version, first):
-                    pipe.delete(self._ver(model_id, old))
-                if op_id:
-                    pipe.hset(self._ops(model_id), op_id, new)
-                    pipe.zadd(self._opt(model_id), {op_id: now})
-                if stale_ops:
-                    pipe.hdel(self._ops(model_id), *stale_ops)
-                    pipe.zrem(self._opt(model_id), *stale_ops)
-                pipe.execute()
-            except redis.WatchError as exc:
-                raise VersionConflict(None) from exc
-        return Head(model_id, head.tenant, new, first, head.created_at, now, record.lp.name, head.cold_engine)
+        record.version = expected_version + 1  # what the script checks; a conflict discards the record
+        record.summary["version"] = record.version
+        if prior is not None and prior.digests is None:
+            prior = None
+        fields, blobs = split_blobs(encode_record(record, prior))
+        held = {d for known in prior.digests.values() for d in known} if prior is not None else set()
+        send = [d for d in blobs if d not in held]
+        stage = f"{{hb:{model_id}}}:stage:{secrets.token_hex(8)}"
+        keys = [self._head(model_id), self._blobrefs(model_id), self._ops(model_id), self._opt(model_id), stage]
+        for _attempt in range(2):
+            args = [expected_version, self.keep, repr(now), op_id or "", repr(now - self.op_ttl),
+                    f"{{hb:{model_id}}}:", record.lp.name, ",".join(send)]  # fmt: skip
+            with self.r.pipeline(transaction=True) as pipe:
+                for d in send:
+                    pipe.set(self._blob(model_id, d), blobs[d])
+                pipe.hset(stage, mapping=fields)
+                # EVAL, not EVALSHA: a script missing from Redis's cache (after a restart) would fail
+                # inside the transaction after the writes before it; the 5 KB text is cheap to send
+                pipe.execute_command("EVAL", COMMIT_LUA, len(keys), *keys, *args)  # (cluster pipelines have no .eval)
+                reply = pipe.execute()[-1]
+            outcome = reply[0].decode()
+            if outcome != "need":
+                break
+            # the store lacks blobs the caller took for held (its cached version is not what Redis
+            # holds, e.g. a model deleted and created again under the same id): send every piece
+            fields, blobs = split_blobs(encode_record(record))
+            send = list(blobs)
+        if outcome == "missing":
+            raise ModelNotFound(model_id)
+        if outcome == "applied":
+            raise AlreadyApplied(int(reply[1]))
+        if outcome == "conflict":
+            raise VersionConflict(int(reply[1]))
+        if outcome != "ok":
+            raise StoreError(f"commit of model {model_id}: {outcome}")
+        new, first = int(reply[1]), int(reply[2])
+        tenant, created_at, cold_engine = (b.decode() for b in reply[3:6])
+        record.digests = {k[len(REF) :]: ref_digests(v) for k, v in fields.items() if k.startswith(REF)}
+        return Head(model_id, tenant, new, first, float(created_at), now, record.lp.name, cold_engine)
 
     def delete(self, model_id: str) -> bool:
         head_key = self._head(model_id)

@@ -307,9 +307,10 @@ def test_an_appended_constraint_writes_only_the_last_row_pieces(store, rclient):
     grown.row_names = [*lp.row_names, "new lane cap"]
     store.commit(mid, 1, record(grown))
     added = _blob_keys(rclient, mid) - before
-    # the last row piece of: the matrix, both row bounds, the row names, the activities, the
-    # shadow prices (the columns' costs, bounds, names and values are shared with version 1)
-    assert len(added) == 6
+    # the last row piece of: the matrix, both row bounds, the row names, the shadow prices (the
+    # columns' costs, bounds, names and values are shared with version 1; the activities are A x,
+    # recomputed when read, not stored)
+    assert len(added) == 5
     assert sum(len(rclient.get(k)) for k in added) < 0.1 * sum(len(rclient.get(k)) for k in before)
     back = store.load(mid, 2).lp
     assert (back.A != grown.A).nnz == 0 and back.row_names[-1] == "new lane cap"
@@ -356,3 +357,188 @@ def test_versions_written_in_the_whole_array_layout_still_load(store, rclient):
     assert (back.lp.A != lp.A).nnz == 0 and back.lp.row_names == lp.row_names
     np.testing.assert_array_equal(back.lp.row_upper, lp.row_upper)
     np.testing.assert_array_equal(back.solution.x, np.arange(lp.n, dtype=float))
+
+
+def test_a_refused_commit_changes_nothing_stored(store, rclient):
+    """The commit script checks everything before its first write: a stale version, an operation
+    applied before and a vanished model leave Redis byte for byte as they were."""
+    lp = from_document(DOC)
+    mid = new_model_id()
+    store.create(mid, "acme", record(lp))
+    store.commit(mid, 1, record(lp), op_id="job-1")
+    changed = lp.copy()
+    changed.c = lp.c + 1.0  # new blobs that a refused commit must not leave behind
+    before = snapshot(rclient)
+    with pytest.raises(VersionConflict):
+        store.commit(mid, 1, record(changed))
+    with pytest.raises(AlreadyApplied):
+        store.commit(mid, 2, record(changed), op_id="job-1")
+    with pytest.raises(ModelNotFound):
+        store.commit(new_model_id(), 1, record(changed))
+    assert snapshot(rclient) == before
+
+
+def _sent_bytes(rclient, call) -> int:
+    """Bytes Redis received while ``call`` ran (its own counter)."""
+    before = rclient.info("stats")["total_net_input_bytes"]
+    call()
+    return rclient.info("stats")["total_net_input_bytes"] - before
+
+
+def test_a_commit_sends_only_the_pieces_its_previous_version_lacks(store, rclient):
+    lp = _wide_lp(600, 3000)
+    mid = new_model_id()
+    first = record(lp)
+    store.create(mid, "acme", first)
+    store.commit(mid, 1, record(lp, note="again"))
+    second = store.load(mid, 2)
+    moved = lp.copy()
+    moved.row_upper[0] += 1.0  # one row piece of the right-hand sides changes
+    full = _sent_bytes(rclient, lambda: store.commit(mid, 2, record(moved)))
+    lean = _sent_bytes(rclient, lambda: store.commit(mid, 3, record(moved), prior=second))
+    assert lean < 0.1 * full  # without the previous digests every piece travels
+    assert {k: int(v) for k, v in rclient.hgetall(f"{{hb:{mid}}}:blobrefs").items()} == _expected_refcounts(
+        rclient, store, mid
+    )
+    np.testing.assert_array_equal(store.load(mid, 4).lp.row_upper, moved.row_upper)
+
+
+def test_digests_claimed_but_not_held_are_asked_for_and_sent(store, rclient):
+    """A caller's idea of what the store holds can be stale (its cached version was pruned by
+    another process): the script names the missing blobs and the commit sends them."""
+    lp = from_document(DOC)
+    mid = new_model_id()
+    store.create(mid, "acme", record(lp))
+    changed = lp.copy()
+    changed.c = lp.c * 3.0
+    claimed = store.load(mid, 1)
+    import service.store as st
+
+    fields, _ = st.split_blobs(st.encode_record(record(changed)))
+    claimed.digests["lp.c"] = st.ref_digests(fields["ref.lp.c"])  # claims the new costs' blob is held
+    claimed.lp.c = changed.c.copy()  # and that the previous version had these costs
+    store.commit(mid, 1, record(changed), prior=claimed)
+    np.testing.assert_array_equal(store.load(mid, 2).lp.c, changed.c)
+    assert {k: int(v) for k, v in rclient.hgetall(f"{{hb:{mid}}}:blobrefs").items()} == _expected_refcounts(
+        rclient, store, mid
+    )
+
+
+def test_a_blob_used_twice_by_one_version_is_counted_once_and_released_on_prune(store, rclient):
+    lp = from_document(DOC)
+    lp.c[:] = 0.0  # costs equal to the lower bounds: one blob for two fields
+    lp.col_lower[:] = 0.0
+    mid = new_model_id()
+    store.create(mid, "acme", record(lp))
+    for n in range(2, 7):  # keep_versions=3: versions 1-3 are pruned
+        changed = lp.copy()
+        changed.row_upper = lp.row_upper + n
+        store.commit(mid, n - 1, record(changed), prior=store.load(mid, n - 1))
+    stored = {k: int(v) for k, v in rclient.hgetall(f"{{hb:{mid}}}:blobrefs").items()}
+    assert stored == _expected_refcounts(rclient, store, mid)
+    assert {k.rsplit(b":", 1)[1] for k in _blob_keys(rclient, mid)} == set(stored)
+    np.testing.assert_array_equal(store.load(mid, 6).lp.c, lp.c)
+
+
+def _changes_of(lp):
+    """Changes of every kind on a model larger than the pieces, each a new LinearProgram."""
+    import scipy.sparse as sp
+
+    from service.store import ROW_PIECE
+
+    def appended(base, k):
+        grown = base.copy()
+        rows = sp.csr_matrix((np.arange(1.0, 2 * k + 1), (np.repeat(np.arange(k), 2), np.arange(2 * k) * 7 % base.n)),
+                             shape=(k, base.n))  # fmt: skip
+        grown.A = sp.vstack([base.A, rows], format="csc")
+        grown.row_lower = np.append(base.row_lower, np.full(k, -np.inf))
+        grown.row_upper = np.append(base.row_upper, np.arange(k) + 3.0)
+        grown.row_names = [*base.row_names, *(f"cut{base.m + i}" for i in range(k))]
+        return grown
+
+    out = [appended(lp, 1), appended(lp, ROW_PIECE + 3)]
+    coef = lp.copy()
+    coef.A = lp.A.copy()
+    coef.A.data[5] *= 2.0  # one coefficient in an early row block
+    out.append(coef)
+    cost = lp.copy()
+    cost.c = lp.c.copy()
+    cost.c[-1] = -0.0  # was 0.0: equal as numbers, another byte string
+    out.append(cost)
+    fewer = lp.copy()
+    keep = np.arange(lp.m) != 3  # a removed row shifts every later row
+    fewer.A = lp.A[keep].tocsc()
+    fewer.row_lower, fewer.row_upper = lp.row_lower[keep], lp.row_upper[keep]
+    fewer.row_names = [nm for i, nm in enumerate(lp.row_names) if keep[i]]
+    out.append(fewer)
+    wider = lp.copy()
+    wider.A = sp.hstack([lp.A, sp.csc_matrix((lp.m, 1))], format="csc")
+    for name, value in (("c", 1.0), ("col_lower", 0.0), ("col_upper", np.inf)):
+        setattr(wider, name, np.append(getattr(lp, name), value))
+    wider.col_names = [*lp.col_names, "new lane"]
+    out.append(wider)
+    return out
+
+
+def test_pieces_carried_from_the_previous_version_store_what_a_full_encoding_stores(store, rclient):
+    """Naming the previous version's pieces instead of encoding them is only a shortcut: every
+    kind of change leaves exactly the digests (hence bytes) a from-scratch encoding gives."""
+    from service.store import ROW_PIECE
+
+    lp = _wide_lp(2 * ROW_PIECE + 40, 2100)
+    lp.c[-1] = 0.0
+    for changed in _changes_of(lp):
+        carried, full = new_model_id(), new_model_id()
+        for mid in (carried, full):
+            store.create(mid, "acme", record(lp))
+        store.commit(carried, 1, record(changed), prior=store.load(carried, 1))
+        store.commit(full, 1, record(changed))
+        refs = [
+            {k: v for k, v in rclient.hgetall(f"{{hb:{mid}}}:v:2").items() if k.startswith(b"ref.")}
+            for mid in (carried, full)
+        ]
+        assert refs[0] == refs[1]
+        back = store.load(carried, 2)
+        assert (back.lp.A != changed.A).nnz == 0 and back.lp.row_names == changed.row_names
+        np.testing.assert_array_equal(np.signbit(back.lp.c), np.signbit(changed.c))
+        assert {k: int(v) for k, v in rclient.hgetall(f"{{hb:{carried}}}:blobrefs").items()} == (
+            _expected_refcounts(rclient, store, carried)
+        )
+
+
+def test_activities_and_reduced_costs_that_the_model_gives_back_are_not_stored(store, rclient):
+    """A x and c - A^T y, when the solve reported exactly those numbers (the builtin engine does),
+    are recomputed when read, bit for bit; numbers that differ in any bit (another solver's duals)
+    are stored as they are."""
+    lp = _wide_lp(300, 1500)
+    x = np.linspace(0.0, 3.0, lp.n)
+    y = np.linspace(-1.0, 1.0, lp.m)
+    exact = Solution(x, lp.A @ x, y, lp.c - lp.A.T @ y)
+    other = Solution(x, np.nextafter(lp.A @ x, np.inf), y, np.nextafter(lp.c - lp.A.T @ y, np.inf))
+    for sol, stored in ((exact, False), (other, True)):
+        mid = new_model_id()
+        rec = record(lp)
+        rec.solution = sol
+        store.create(mid, "acme", rec)
+        fields = rclient.hgetall(f"{{hb:{mid}}}:v:1")
+        assert (b"ref.sol.row_activity" in fields) is stored and (b"ref.sol.reduced_cost" in fields) is stored
+        back = store.load(mid, 1).solution
+        for name in ("x", "row_activity", "shadow_price", "reduced_cost"):
+            assert getattr(back, name).tobytes() == getattr(sol, name).tobytes(), name
+
+
+def test_the_result_is_stored_compressed_and_read_back_whole(store, rclient):
+    lp = from_document(DOC)
+    mid = new_model_id()
+    rec = record(lp)
+    rec.result["pivot_log"] = [{"iteration": k, "leaving": f"row {k}", "step": k / 7} for k in range(500)]
+    store.create(mid, "acme", rec)
+    raw = rclient.hget(f"{{hb:{mid}}}:v:1", "result.z")
+    assert raw is not None and len(raw) < len(orjson_dumps(rec.result)) / 3
+    assert store.load(mid, 1).result == rec.result
+
+
+def orjson_dumps(value) -> bytes:
+    import orjson
+
+    return orjson.dumps(value)

@@ -210,11 +210,11 @@ class Factor(_EtaFile):
 class BorderedFactor(_EtaFile):
     """A finished factorization extended by appended rows with basic logicals."""
 
-    def __init__(self, base: _EtaFile, C: sp.csr_matrix) -> None:
+    def __init__(self, base: _EtaFile, C: sp.spmatrix) -> None:
         super().__init__()
         self.base = base
-        self.C = sp.csr_matrix(C)
-        self.CT = sp.csr_matrix(self.C.T)
+        self.C = C.tocsr()
+        self.CT = C.T.tocsr()  # no copy when C comes as a CSC
         self.m0 = base.m
         self.m = base.m + self.C.shape[0]
         self.depth = getattr(base, "depth", 0) + 1

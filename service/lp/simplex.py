@@ -237,42 +237,52 @@ class Simplex:
         lp, n, m = self.lp, self.n, self.m
         A = lp.A
         m0 = state.A.shape[0]
-        top = A.indices < m0
         basic_idx = np.concatenate([state.basic_idx, n + np.arange(m0, m)]).astype(np.int64)
-        # scale the appended rows with the kept column scales (geometric mean)
         S = state.scaling.col
         R_new = np.ones(m - m0)
+        C = None
         if m > m0:
-            cols = np.repeat(np.arange(n), np.diff(A.indptr))[~top]
-            rows = A.indices[~top] - m0
-            logs = np.log2(np.abs(A.data[~top] * S[cols]) + 1e-300)
+            # the appended rows' entries sit at the end of each column (indices are sorted): take them
+            # column-wise as they are, scaled with the kept column scales and a geometric-mean row scale
+            new = A.indices >= m0
+            per_col = np.diff(np.concatenate([[0], np.cumsum(new)])[A.indptr])
+            add_ptr = np.concatenate([[0], np.cumsum(per_col)])
+            add_rows = (A.indices[new] - m0).astype(np.int64)
+            cols = np.repeat(np.arange(n), per_col)
+            vals = A.data[new] * S[cols]
+            logs = np.log2(np.abs(vals) + 1e-300)
             rmax = np.full(m - m0, -np.inf)
             rmin = np.full(m - m0, np.inf)
-            np.maximum.at(rmax, rows, logs)
-            np.minimum.at(rmin, rows, logs)
+            np.maximum.at(rmax, add_rows, logs)
+            np.minimum.at(rmin, add_rows, logs)
             has = np.isfinite(rmax)
             R_new[has] = np.exp2(np.round(-0.5 * (rmax[has] + rmin[has])))
-            new_block = sp.csr_matrix((A.data[~top] * S[cols] * R_new[rows], (rows, cols)), shape=(m - m0, n))
-            old_A, add = state.A_scaled, new_block.tocsc()
-            add.sort_indices()
+            vals = vals * R_new[add_rows]
+            old_A = state.A_scaled
             ptr, idx, val = kernels.append_rows_csc(
                 old_A.indptr, old_A.indices, old_A.data,
-                add.indptr.astype(old_A.indptr.dtype), add.indices.astype(old_A.indices.dtype), add.data, m0,
+                add_ptr.astype(old_A.indptr.dtype), add_rows.astype(old_A.indices.dtype), vals, m0,
             )  # fmt: skip
             self.A = sp.csc_matrix((val, idx, ptr), shape=(m, n))
+            if full:
+                # the border: the new rows over the old basic columns, in basis order; held as the
+                # CSC of C (= the CSR of C^T), gathered column by column
+                struct = np.flatnonzero(state.basic_idx < n)
+                picked = state.basic_idx[struct]
+                counts = np.zeros(m0, dtype=np.int64)
+                counts[struct] = per_col[picked]
+                c_ptr = np.concatenate([[0], np.cumsum(counts)])
+                sel = picked[counts[struct] > 0]
+                lens, starts = per_col[sel], add_ptr[sel]
+                take = np.repeat(starts - (np.cumsum(lens) - lens), lens) + np.arange(lens.sum())
+                C = sp.csr_matrix((vals[take], add_rows[take], c_ptr), shape=(m0, m - m0)).T
         else:
-            new_block = None
             self.A = state.A_scaled
         self.sc = Scaling(np.concatenate([state.scaling.row, R_new]), S)
         if not full:
             self.scaling_reused = True
             return False
-        if new_block is not None:
-            # the border: new rows over the old basic columns, in basis order
-            struct = np.flatnonzero(state.basic_idx < n)
-            pick = sp.csc_matrix((np.ones(struct.size), (state.basic_idx[struct], struct)), shape=(n, m0))
-            C = new_block @ pick
-        else:
+        if C is None:
             C = sp.csr_matrix((0, m0))
         self.basic_idx = basic_idx
         self.factor = BorderedFactor(state.factor, C)
