@@ -186,7 +186,10 @@ class ModelService:
             if cached is not None:
                 prior, state = cached.record, cached.engine_state
             else:
-                prior, state = self.record(head), None
+                try:
+                    prior, state = self.record(head), None
+                except ModelNotFound:  # pruned by newer commits since the head was read: read again
+                    continue
             timings["load"] = timings.get("load", 0.0) + time.perf_counter() - t
 
             t = time.perf_counter()
@@ -214,9 +217,7 @@ class ModelService:
                 rec.result.update(extra)
                 rec.summary["changes"] = {**(rec.summary["changes"] or {}), **extra}
             try:
-                new_head = self.store.commit(
-                    model_id, head.version, rec, op_id=op_id, prior=prior
-                )
+                new_head = self.store.commit(model_id, head.version, rec, op_id=op_id, prior=prior)
             except VersionConflict:
                 timings["store"] = timings.get("store", 0.0) + time.perf_counter() - t
                 if if_match is not None and "*" not in if_match:

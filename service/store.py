@@ -174,14 +174,22 @@ def _carried(old_digests: list[str] | None, old_count: int) -> list[str] | None:
 
 
 def _pieces(
-    a: np.ndarray, dtype: np.dtype, size: int, old: np.ndarray | None = None, old_digests: list[str] | None = None
+    a: np.ndarray,
+    dtype: np.dtype,
+    size: int,
+    old: np.ndarray | None = None,
+    old_digests: list[str] | None = None,
 ) -> list[Piece]:
     buf = np.ascontiguousarray(a, dtype=dtype)
-    out: list[Piece] = [buf[i : i + size].tobytes() for i in range(0, buf.size, size)]
+    prev = known = None
     if old is not None:
         prev = np.ascontiguousarray(old, dtype=dtype)
         known = _carried(old_digests, -(-prev.size // size))
-        for k in range(min(len(out), len(known or ()))):
+        if known is not None and prev.size == buf.size and buf.tobytes() == prev.tobytes():
+            return list(known)  # the whole array is unchanged (the common case for costs and bounds)
+    out: list[Piece] = [buf[i : i + size].tobytes() for i in range(0, buf.size, size)]
+    if known is not None:
+        for k in range(min(len(out), len(known))):
             if out[k] == prev[k * size : (k + 1) * size].tobytes():  # bytewise: -0.0 is not 0.0
                 out[k] = known[k]
     return out
@@ -191,6 +199,8 @@ def _name_pieces(
     names: list[str], size: int, old: list[str] | None = None, old_digests: list[str] | None = None
 ) -> list[Piece]:
     known = _carried(old_digests, -(-len(old) // size)) if old is not None else None
+    if known is not None and (names is old or names == old):
+        return list(known)
     out: list[Piece] = []
     for k, i in enumerate(range(0, len(names), size)):
         part = names[i : i + size]
@@ -298,6 +308,7 @@ def _encode_lp(lp: LinearProgram, old: LinearProgram | None, dig: dict[str, list
         "offset": lp.offset,
         "name": lp.name,
     }
+
     def was(name: str):
         return getattr(old, name) if old is not None else None
 
@@ -383,7 +394,9 @@ def encode_record(rec: VersionRecord, prior: VersionRecord | None = None) -> Fie
 
 
 def _same_bits(a: np.ndarray, b: np.ndarray) -> bool:
-    return a.shape == b.shape and np.array_equal(np.ascontiguousarray(a, F8).view(I8), np.ascontiguousarray(b, F8).view(I8))
+    return a.shape == b.shape and np.array_equal(
+        np.ascontiguousarray(a, F8).view(I8), np.ascontiguousarray(b, F8).view(I8)
+    )
 
 
 def _derived_arrays(lp: LinearProgram, sol: Solution) -> list[str]:
@@ -867,6 +880,8 @@ class Store:
         for name, digests in refs.items():
             missing = [d for d in digests if found[d] is None]
             if missing:
+                if not self.r.exists(self._ver(model_id, version)):
+                    return None  # pruned (or the model deleted) between the two reads
                 raise ValueError(f"model {model_id} version {version}: blob {missing[0]} is missing")
             raw[name] = [found[d] for d in digests]  # the pieces in order (one whole blob in old stores)
         record = decode_record(raw)
@@ -974,7 +989,13 @@ class Store:
         held = {d for known in prior.digests.values() for d in known} if prior is not None else set()
         send = [d for d in blobs if d not in held]
         stage = f"{{hb:{model_id}}}:stage:{secrets.token_hex(8)}"
-        keys = [self._head(model_id), self._blobrefs(model_id), self._ops(model_id), self._opt(model_id), stage]
+        keys = [
+            self._head(model_id),
+            self._blobrefs(model_id),
+            self._ops(model_id),
+            self._opt(model_id),
+            stage,
+        ]
         for _attempt in range(2):
             args = [expected_version, self.keep, repr(now), op_id or "", repr(now - self.op_ttl),
                     f"{{hb:{model_id}}}:", record.lp.name, ",".join(send)]  # fmt: skip
@@ -984,7 +1005,9 @@ class Store:
                 pipe.hset(stage, mapping=fields)
                 # EVAL, not EVALSHA: a script missing from Redis's cache (after a restart) would fail
                 # inside the transaction after the writes before it; the 5 KB text is cheap to send
-                pipe.execute_command("EVAL", COMMIT_LUA, len(keys), *keys, *args)  # (cluster pipelines have no .eval)
+                pipe.execute_command(
+                    "EVAL", COMMIT_LUA, len(keys), *keys, *args
+                )  # (cluster pipelines have no .eval)
                 reply = pipe.execute()[-1]
             outcome = reply[0].decode()
             if outcome != "need":

@@ -138,6 +138,8 @@ def test_concurrent_commits_never_overwrite_each_other(store):
             for _ in range(200):
                 head = store.head(mid)
                 current = store.load(mid, head.version)
+                if current is None:  # pruned by the other threads' commits since the head was read
+                    continue
                 new_lp, _ = apply_patch(
                     current.lp, {"constraints": {f"limit_{k}": {"terms": {"tiles": 1}, "upper": k}}}
                 )
@@ -150,7 +152,9 @@ def test_concurrent_commits_never_overwrite_each_other(store):
         except Exception as exc:  # surfaced below; a thread must not die silently
             errors.append(repr(exc))
 
-    threads = [threading.Thread(target=worker, args=(k,)) for k in range(6)]
+    threads = [
+        threading.Thread(target=worker, args=(k,)) for k in range(6)
+    ]  # keep_versions=3: prunes race reads
     for t in threads:
         t.start()
     for t in threads:
@@ -301,7 +305,9 @@ def test_an_appended_constraint_writes_only_the_last_row_pieces(store, rclient):
     store.create(mid, "acme", record(lp))
     before = _blob_keys(rclient, mid)
     grown = lp.copy()
-    grown.A = sp.vstack([lp.A, sp.csr_matrix(([1.0, 2.0], ([0, 0], [3, 900])), shape=(1, lp.n))], format="csc")
+    grown.A = sp.vstack(
+        [lp.A, sp.csr_matrix(([1.0, 2.0], ([0, 0], [3, 900])), shape=(1, lp.n))], format="csc"
+    )
     grown.row_lower = np.append(lp.row_lower, -np.inf)
     grown.row_upper = np.append(lp.row_upper, 4.0)
     grown.row_names = [*lp.row_names, "new lane cap"]
@@ -340,7 +346,9 @@ def test_versions_written_in_the_whole_array_layout_still_load(store, rclient):
         "lp.row_names": "\n".join(lp.row_names).encode(),
     }
     fields = {
-        "lp.meta": orjson.dumps({"m": lp.m, "n": lp.n, "nnz": int(A.nnz), "sense": 1, "offset": 0.0, "name": ""}),
+        "lp.meta": orjson.dumps(
+            {"m": lp.m, "n": lp.n, "nnz": int(A.nnz), "sense": 1, "offset": 0.0, "name": ""}
+        ),
         "sol.x": np.arange(lp.n, dtype="<f8").tobytes(),
         "result": orjson.dumps({"status": "optimal"}),
         "summary": orjson.dumps({"version": 1}),
@@ -542,3 +550,25 @@ def orjson_dumps(value) -> bytes:
     import orjson
 
     return orjson.dumps(value)
+
+
+def test_a_version_pruned_while_it_is_read_reads_as_gone(store, rclient):
+    """Reading a version is two commands (its hash, then its pieces); a commit that prunes it in
+    between must make the read answer "not kept", not fail on the missing pieces."""
+    lp = from_document(DOC)
+    mid = new_model_id()
+    store.create(mid, "acme", record(lp))
+    real_mget = store.r.mget
+
+    def mget_after_prune(keys):
+        for n in range(1, 5):  # keep_versions=3: version 1 goes, with the pieces only it used
+            changed = lp.copy()
+            changed.c = lp.c + n
+            store.commit(mid, n, record(changed))
+        return real_mget(keys)
+
+    store.r.mget = mget_after_prune
+    try:
+        assert store.load(mid, 1) is None
+    finally:
+        store.r.mget = real_mget
