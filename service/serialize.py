@@ -408,7 +408,9 @@ def _binding_report(
         truncated |= changed.size > STORED_MOVES
         pick = changed[order[:STORED_MOVES]]
         # one vectorized clean for each side (a new row's missing "before" becomes None)
-        for i, b, a in zip(pick.tolist(), _clean(prior[pick]), _clean(after.shadow_price[pick])):
-            out["shadow_prices"][names[i]] = {"before": b, "after": a}
+        out["shadow_prices"] = {
+            names[i]: {"before": b, "after": a}
+            for i, b, a in zip(pick.tolist(), _clean(prior[pick]), _clean(after.shadow_price[pick]))
+        }
     out["_truncated"] = bool(truncated)
     return out

@@ -223,7 +223,8 @@ def verify(
             failures.append("primal-dual objective gap")
 
     if basis is not None:
-        fig.update(_basis_figures(lp, basis, x, activity, tol))
+        sides = ((col_at_lower, col_at_upper), (row_at_lower, row_at_upper))
+        fig.update(_basis_figures(lp, basis, x, activity, tol, sides))
         if fig["basic_count"] != lp.m:
             failures.append(f"basis has {fig['basic_count']} basics, expected {lp.m}")
         if fig["nonbasic_off_bound"]:
@@ -234,15 +235,19 @@ def verify(
     return fig
 
 
-def _basis_figures(lp: LinearProgram, basis: Basis, x: np.ndarray, activity: np.ndarray, tol: float) -> dict:
+def _basis_figures(
+    lp: LinearProgram, basis: Basis, x: np.ndarray, activity: np.ndarray, tol: float, sides=None
+) -> dict:
+    """``sides``: the (at_lower, at_upper) pairs of the columns and the rows, when already known."""
     if basis.n != lp.n or basis.m != lp.m:
         raise ValueError(f"basis is {basis.n} x {basis.m}, model is {lp.n} x {lp.m}")
+    if sides is None:
+        sides = (_sides(x, lp.col_lower, lp.col_upper, tol), _sides(activity, lp.row_lower, lp.row_upper, tol))
     off = 0
-    for status, values, lower, upper in (
-        (basis.col_status, x, lp.col_lower, lp.col_upper),
-        (basis.row_status, activity, lp.row_lower, lp.row_upper),
+    for status, values, (at_lower, at_upper) in (
+        (basis.col_status, x, sides[0]),
+        (basis.row_status, activity, sides[1]),
     ):
-        at_lower, at_upper = _sides(values, lower, upper, tol)
         off += int(((status == Status.AT_LOWER) & ~at_lower).sum())
         off += int(((status == Status.AT_UPPER) & ~at_upper).sum())
         off += int(((status == Status.FIXED) & ~(at_lower | at_upper)).sum())

@@ -169,12 +169,18 @@ class Factor(_EtaFile):
         self.seconds = time.perf_counter() - started  # what a refactorization costs here
 
     def _block_triangular(self, B: sp.csc_matrix) -> sp.csc_matrix | None:
+        if (B.data == 0).any():
+            B = B.copy()
+            B.eliminate_zeros()
         csr = B.tocsr()
-        csr.eliminate_zeros()
         match = maximum_bipartite_matching(csr, perm_type="column")
         if (match < 0).any():
             raise SingularBasis("basis matrix is structurally singular")
-        _, labels = connected_components(csr[:, match], directed=True, connection="strong")
+        # the graph of B with its columns in matched order (column match[i] at position i)
+        at = np.empty(match.size, dtype=np.int64)
+        at[match] = np.arange(match.size)
+        matched = sp.csr_matrix((csr.data, at[csr.indices], csr.indptr), shape=csr.shape)
+        _, labels = connected_components(matched, directed=True, connection="strong")
         sizes = np.bincount(labels).astype(np.float64)
         # natural order inside a block can fill it completely: accept the
         # triangular path while that worst case stays near the size of B
@@ -186,7 +192,8 @@ class Factor(_EtaFile):
         perm = np.argsort(-labels, kind="stable")
         self.row_perm = perm
         self.col_perm = match[perm].astype(np.int64)
-        return sp.csc_matrix(csr[perm][:, self.col_perm])
+        ptr, idx, val = kernels.permute_csc(B.indptr, B.indices, B.data, perm.astype(np.int64), self.col_perm)
+        return sp.csc_matrix((val, idx, ptr), shape=B.shape)
 
     def solve_block(self, a: np.ndarray) -> np.ndarray:
         """B0^-1 a for a block of columns (no eta updates: a fresh factorization)."""

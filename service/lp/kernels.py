@@ -362,6 +362,67 @@ def append_rows_csc(indptr, indices, data, add_indptr, add_indices, add_data, m0
     return out_ptr, out_idx, out_val
 
 
+@numba.njit(**_JIT)
+def basis_csc(indptr, indices, data, n, bcols):
+    """CSC arrays of the basis matrix B = [A | -I][:, bcols]: a structural
+    column copied from A (CSC, sorted rows), a logical n + i as -e_i."""
+    m = bcols.size
+    nnz = 0
+    for k in range(m):
+        j = bcols[k]
+        nnz += indptr[j + 1] - indptr[j] if j < n else 1
+    out_ptr = np.empty(m + 1, np.int64)
+    out_idx = np.empty(nnz, np.int64)
+    out_val = np.empty(nnz)
+    p = 0
+    out_ptr[0] = 0
+    for k in range(m):
+        j = bcols[k]
+        if j < n:
+            for q in range(indptr[j], indptr[j + 1]):
+                out_idx[p] = indices[q]
+                out_val[p] = data[q]
+                p += 1
+        else:
+            out_idx[p] = j - n
+            out_val[p] = -1.0
+            p += 1
+        out_ptr[k + 1] = p
+    return out_ptr, out_idx, out_val
+
+
+@numba.njit(**_JIT)
+def permute_csc(indptr, indices, data, row_perm, col_perm):
+    """CSC arrays of B[row_perm][:, col_perm] with each column's rows sorted
+    (insertion sort: basis columns hold a handful of entries)."""
+    m = row_perm.size
+    inv = np.empty(m, np.int64)
+    for i in range(m):
+        inv[row_perm[i]] = i
+    ncol = col_perm.size
+    out_ptr = np.empty(ncol + 1, np.int64)
+    out_idx = np.empty(indices.size, np.int64)
+    out_val = np.empty(indices.size)
+    p = 0
+    out_ptr[0] = 0
+    for k in range(ncol):
+        j = col_perm[k]
+        start = p
+        for q in range(indptr[j], indptr[j + 1]):
+            r = inv[indices[q]]
+            v = data[q]
+            t = p
+            while t > start and out_idx[t - 1] > r:
+                out_idx[t] = out_idx[t - 1]
+                out_val[t] = out_val[t - 1]
+                t -= 1
+            out_idx[t] = r
+            out_val[t] = v
+            p += 1
+        out_ptr[k + 1] = p
+    return out_ptr, out_idx, out_val
+
+
 def warm_up() -> None:
     """Compile (or load from the cache) every kernel on tiny inputs, so the
     first real request does not pay for it."""
@@ -385,3 +446,7 @@ def warm_up() -> None:
     lu_solve(ptr, idx, np.ones(4), ptr, idx, np.ones(4), np.ones(4), idx, idx, np.ones((4, 2)))
     lu_solve_t(ptr, idx, np.ones(4), ptr, idx, np.ones(4), np.ones(4), idx, idx, np.ones(4))
     eta_btran(np.ones(4), idx[:1], np.ones(1), np.array([0, 1], dtype=np.int64), idx[1:2], v[:1], 1)
+    for ints in (np.int32, np.int64):  # scipy keeps either index type
+        bptr, bidx, bval = basis_csc(np.array([0, 1], dtype=ints), np.array([0], dtype=ints), np.ones(1), 1,
+                                     np.array([0, 2], dtype=np.int64))  # fmt: skip
+        permute_csc(bptr.astype(ints), bidx.astype(ints), bval, idx[:2][::-1].copy(), idx[:2][::-1].copy())

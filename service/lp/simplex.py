@@ -310,7 +310,7 @@ class Simplex:
     def refactor(self, reason: str) -> None:
         t = time.perf_counter()
         bcols = self.basic_idx
-        B = self._basis_matrix(bcols, bcols < self.n)
+        B = self._basis_matrix(bcols)
         self.factor = Factor(B)
         self.timings["factorize"] += time.perf_counter() - t
         self._adapt_refactor_interval()
@@ -321,19 +321,9 @@ class Simplex:
     def _adapt_refactor_interval(self) -> None:
         self.refactor_every = _refactor_interval(self.factor, self.opt)
 
-    def _basis_matrix(self, bcols: np.ndarray, struct: np.ndarray) -> sp.csc_matrix:
-        m = self.m
-        cols = self.A[:, bcols[struct]]
-        slots = np.flatnonzero(struct)
-        logical_rows = bcols[~struct] - self.n
-        logical_slots = np.flatnonzero(~struct)
-        # assemble CSC of B directly: structural columns then logicals, then permute
-        data = [cols.data, -np.ones(logical_rows.size)]
-        rows = [cols.indices, logical_rows]
-        colidx = [np.repeat(slots, np.diff(cols.indptr)), logical_slots]
-        return sp.csc_matrix(
-            (np.concatenate(data), (np.concatenate(rows), np.concatenate(colidx))), shape=(m, m)
-        )
+    def _basis_matrix(self, bcols: np.ndarray) -> sp.csc_matrix:
+        ptr, idx, val = kernels.basis_csc(self.A.indptr, self.A.indices, self.A.data, self.n, bcols)
+        return sp.csc_matrix((val, idx, ptr), shape=(self.m, self.m))
 
     def nonbasic_values(self) -> None:
         st = self.status
