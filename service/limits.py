@@ -20,8 +20,12 @@ class Limits:
     rows: int = 200_000  # constraints per model
     columns: int = 1_000_000  # variables per model
     nonzeros: int = 5_000_000  # constraint coefficients per model
-    rate: float = 100.0  # requests per second, sustained (token bucket refill)
-    burst: int = 200  # requests that may arrive at once (bucket size)
+    # requests per second, sustained (token bucket refill): above what one tenant's changes can
+    # keep a few cores busy with (a 2,000-row change costs ~15-50 ms of a core), so the default
+    # guards against runaway clients without throttling a busy tenant; set it lower per tenant
+    # for fairness between tenants
+    rate: float = 500.0
+    burst: int = 1000  # requests that may arrive at once (bucket size)
 
 
 ENV_NAMES = {
