@@ -137,10 +137,11 @@ start_workers() {  # HOTBASIS_WORKERS_ASYNC queue workers (python -m service.wor
     fi
     # (exec: the pid file names the worker itself, and no shell keeps this script's output open)
     (cd "$ROOT" && HOTBASIS_REDIS_URL="redis://127.0.0.1:$REDIS_PORT/0" \
+      HOTBASIS_WORKER_METRICS_PORT="$((PORT + i))" HOTBASIS_WORKER_METRICS_BIND=127.0.0.1 \
       exec nohup "$PY" -m service.worker >>"$LOCAL/logs/worker-$i.log" 2>&1 </dev/null) &
     echo $! > "$pidfile"
   done
-  say "$count queue worker(s) for async jobs (logs: .local/logs/worker-*.log)"
+  say "$count queue worker(s) for async jobs (logs: .local/logs/worker-*.log; metrics: ports $((PORT + 1))-$((PORT + count)))"
 }
 
 stop_pidfile() {  # stop_pidfile <file> <label>

@@ -14,7 +14,10 @@ Settings (environment): HOTBASIS_REDIS_URL and the model settings the API
 reads, HOTBASIS_JOB_IDLE_TIMEOUT (seconds without a heartbeat before another
 worker takes a job over, default 60), HOTBASIS_JOB_BLOCK (seconds one read
 waits for a new job, default 1), HOTBASIS_JOB_MAX_ATTEMPTS (default 5),
-HOTBASIS_JOB_TTL (seconds a finished job is kept, default 86400).
+HOTBASIS_JOB_TTL (seconds a finished job is kept, default 86400),
+HOTBASIS_WORKER_METRICS_PORT (serve this worker's Prometheus metrics, the
+re-optimizations it stored and their pivots, on GET /metrics at that port;
+unset: no HTTP at all) and HOTBASIS_WORKER_METRICS_BIND (default 0.0.0.0).
 """
 
 from __future__ import annotations
@@ -27,6 +30,7 @@ import socket
 import threading
 import time
 from collections.abc import Callable
+from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from typing import Any
 
 
@@ -276,6 +280,32 @@ def _install_test_pause(store: Any) -> None:
 
 
 # ---------------------------------------------------------------- entry point
+def serve_metrics(port: int, bind: str = "0.0.0.0") -> ThreadingHTTPServer:
+    """GET /metrics: this worker's metrics (service.metrics.render), from a daemon thread."""
+    from service import metrics
+
+    class Handler(BaseHTTPRequestHandler):
+        def do_GET(self) -> None:  # noqa: N802 (the http.server hook's name)
+            if self.path.split("?")[0] != "/metrics":
+                self.send_error(404)
+                return
+            body = metrics.render()
+            self.send_response(200)
+            self.send_header("Content-Type", metrics.CONTENT_TYPE_LATEST)
+            self.send_header("Content-Length", str(len(body)))
+            self.end_headers()
+            self.wfile.write(body)
+
+        def log_message(self, *_args: Any) -> None:  # scrapes are not worth a log line each
+            pass
+
+    server = ThreadingHTTPServer((bind, port), Handler)
+    server.daemon_threads = True
+    threading.Thread(target=server.serve_forever, name="metrics", daemon=True).start()
+    log.info("metrics on /metrics", extra={"port": server.server_address[1]})
+    return server
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(prog="python -m service.worker", description=__doc__.splitlines()[0])
     parser.add_argument("--consumer", help="consumer name in the group (default host:pid:random)")
@@ -302,6 +332,8 @@ def main(argv: list[str] | None = None) -> int:
         max_attempts=int(env.get("HOTBASIS_JOB_MAX_ATTEMPTS", "5")),
     )
     _install_test_pause(service.store)
+    if env.get("HOTBASIS_WORKER_METRICS_PORT"):
+        serve_metrics(int(env["HOTBASIS_WORKER_METRICS_PORT"]), env.get("HOTBASIS_WORKER_METRICS_BIND", "0.0.0.0"))
 
     def on_signal(signum: int, _frame: Any) -> None:
         log.info("stopping after the job in hand", extra={"signal": signal.Signals(signum).name})

@@ -15,6 +15,7 @@ import signal
 import subprocess
 import sys
 import time
+import urllib.request
 from pathlib import Path
 
 import numpy as np
@@ -50,7 +51,7 @@ class Workers:
         self.procs: list[subprocess.Popen] = []
         self.r = redis.Redis.from_url(redis_url)
 
-    def start(self, count: int, pause: str | None = None) -> list[subprocess.Popen]:
+    def start(self, count: int, pause: str | None = None, extra_env: dict | None = None) -> list[subprocess.Popen]:
         env = {
             **os.environ,
             "HOTBASIS_REDIS_URL": self.redis_url,
@@ -61,6 +62,7 @@ class Workers:
             "PYTHONPATH": str(ROOT),
         }
         env.pop("HOTBASIS_WORKER_TEST_PAUSE", None)
+        env.update(extra_env or {})
         if pause:
             env["HOTBASIS_WORKER_TEST_PAUSE"] = pause
         started = []
@@ -274,3 +276,29 @@ def test_worker_waits_out_a_redis_outage_and_runs_the_next_job(tmp_path):
     finally:
         pool.stop_all()
         server.stop()
+
+
+def test_a_worker_serves_the_reoptimizations_it_stored_on_its_metrics_port(client, workers, plan_model):
+    """Workers run no API, so the API's /metrics cannot see their solves: each worker serves its
+    own (HOTBASIS_WORKER_METRICS_PORT), and an async change shows up there, counted once."""
+    from conftest import free_port
+
+    port = free_port()
+    workers.start(1, extra_env={"HOTBASIS_WORKER_METRICS_PORT": str(port), "HOTBASIS_WORKER_METRICS_BIND": "127.0.0.1"})
+
+    def scrape() -> str:
+        with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=5) as resp:
+            assert resp.headers["Content-Type"].startswith("text/plain")
+            return resp.read().decode()
+
+    def dual_count(text: str) -> float:
+        return sum(
+            float(line.rsplit(" ", 1)[1])
+            for line in text.splitlines()
+            if line.startswith("hotbasis_reoptimizations_total{") and 'method="warm_dual"' in line
+        )
+
+    before = dual_count(wait_for(scrape, 30, "the worker's metrics port"))
+    _mid, location, _cut = create_and_queue_cut(client, plan_model)
+    wait_for(lambda: job_of(client, location)["state"] == "done", 120, "the job")
+    assert dual_count(scrape()) == before + 1
