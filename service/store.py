@@ -674,6 +674,18 @@ return {'ok', tostring(new), tostring(first), st[3], st[4], st[5] or ''}
 """.replace("REF_FIELD_LIST", ", ".join(f"'{name}'" for name in REF_FIELDS))
 
 
+# After a commit script that failed inside its transaction: the staging hash and the sent pieces that
+# nothing counts go (what COMMIT_LUA's refusal does). KEYS: blob counts, staging hash. ARGV: the key
+# prefix of the model, the digests sent (comma-separated).
+RELEASE_LUA = """
+redis.call('DEL', KEYS[2])
+for d in string.gmatch(ARGV[2], '[^,]+') do
+  if redis.call('HEXISTS', KEYS[1], d) == 0 then redis.call('DEL', ARGV[1] .. 'blob:' .. d) end
+end
+return 0
+"""
+
+
 # ------------------------------------------------------------------------------ connecting
 
 SOCKET_TIMEOUT = 3.0  # seconds a command may wait for Redis before the request answers 503
@@ -1008,7 +1020,13 @@ class Store:
                 pipe.execute_command(
                     "EVAL", COMMIT_LUA, len(keys), *keys, *args
                 )  # (cluster pipelines have no .eval)
-                reply = pipe.execute()[-1]
+                try:
+                    reply = pipe.execute()[-1]
+                except redis.ResponseError:
+                    # the script failed inside the transaction (e.g. a key it reads moved away during a
+                    # cluster reshard): the SETs and the staging hash before it stayed; take them back
+                    self._release(model_id, stage, send)
+                    raise
             outcome = reply[0].decode()
             if outcome != "need":
                 break
@@ -1028,6 +1046,16 @@ class Store:
         tenant, created_at, cold_engine = (b.decode() for b in reply[3:6])
         record.digests = {k[len(REF) :]: ref_digests(v) for k, v in fields.items() if k.startswith(REF)}
         return Head(model_id, tenant, new, first, float(created_at), now, record.lp.name, cold_engine)
+
+    def _release(self, model_id: str, stage: str, sent: list[str]) -> None:
+        """Best effort after a failed commit script: drop the staging hash and the sent pieces that
+        no version counts (one script, so a concurrent commit that counts one of them keeps it)."""
+        try:
+            self.r.execute_command(
+                "EVAL", RELEASE_LUA, 2, self._blobrefs(model_id), stage, f"{{hb:{model_id}}}:", ",".join(sent)
+            )
+        except redis.RedisError:
+            pass  # the original error is what the caller hears about
 
     def delete(self, model_id: str) -> bool:
         head_key = self._head(model_id)

@@ -572,3 +572,24 @@ def test_a_version_pruned_while_it_is_read_reads_as_gone(store, rclient):
         assert store.load(mid, 1) is None
     finally:
         store.r.mget = real_mget
+
+
+def test_a_commit_whose_script_fails_in_its_transaction_leaves_no_staging_hash_or_stray_pieces(store, rclient):
+    """The commit's transaction SETs the new pieces and the staging hash before its script runs; when
+    the script fails (here: a version it prunes is not a hash), those writes must not stay behind,
+    since nothing counts them and deleting the model would not find them."""
+    import redis
+
+    lp = from_document(DOC)
+    mid = new_model_id()
+    store.create(mid, "acme", record(lp))
+    for n in (2, 3):
+        store.commit(mid, n - 1, record(lp, note=f"v{n}"))
+    rclient.delete(f"{{hb:{mid}}}:v:1")  # the version the next commit prunes (keep_versions=3)
+    rclient.set(f"{{hb:{mid}}}:v:1", b"not a hash")
+    before = snapshot(rclient)
+    changed = lp.copy()
+    changed.c = lp.c + 7.0  # pieces the store lacks, so the transaction SETs them
+    with pytest.raises(redis.ResponseError):
+        store.commit(mid, 3, record(changed))
+    assert snapshot(rclient) == before
