@@ -4,9 +4,12 @@ A PATCH on a hot model finds the decoded model, basis and solution here and
 skips reading and decoding them from Redis. ``engine_state`` is the engine's
 own warm state (``SolveResult.state``: scaling and factorization of the final
 basis), handed back to ``reoptimize`` on the next change of the same
-(model, version); it lives only in this process and is None after a miss. Entries are immutable once put: a version never changes, so
-the key alone says an entry is current, and no invalidation is needed beyond
-``drop`` on delete.
+(model, version); it lives only in this process and is None after a miss.
+Entries are immutable once put: a version never changes, so the key alone
+says an entry is current, and no invalidation is needed beyond ``drop`` on
+delete. The service names a model by id and creation time
+(``operations.cache_id``), so a model deleted in one process and created
+again under the same id in another is not served from an old entry.
 
 Each gunicorn worker process has its own cache; a miss only costs a read.
 """
@@ -57,8 +60,9 @@ class VersionCache:
                 self._items.popitem(last=False)
 
     def drop(self, model_id: str) -> None:
+        """Forget every version of ``model_id`` (also under names "<id>@<anything>")."""
         with self._lock:
-            for key in [k for k in self._items if k[0] == model_id]:
+            for key in [k for k in self._items if k[0] == model_id or k[0].startswith(model_id + "@")]:
                 del self._items[key]
 
     def __len__(self) -> int:

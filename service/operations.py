@@ -62,6 +62,13 @@ class Outcome:
     attempts: int = 1
 
 
+def cache_id(head: Head) -> str:
+    """The version cache's name for a model: its id and creation time. A model deleted and created
+    again under the same id (an idempotent create) is another model, and another worker's cached
+    versions of the old one must not answer for it; ``VersionCache.drop`` takes the bare id."""
+    return f"{head.model_id}@{head.created_at!r}"
+
+
 class ModelService:
     """Models of many tenants, kept in a Store, re-optimized by the engine."""
 
@@ -88,13 +95,13 @@ class ModelService:
 
     def record(self, head: Head, version: int | None = None) -> VersionRecord:
         version = head.version if version is None else version
-        cached = self.cache.get(head.model_id, version)
+        cached = self.cache.get(cache_id(head), version)
         if cached is not None:
             return cached.record
         rec = self.store.load(head.model_id, version)
         if rec is None:
             raise ModelNotFound(f"{head.model_id} version {version}")
-        self.cache.put(head.model_id, version, rec)
+        self.cache.put(cache_id(head), version, rec)
         return rec
 
     # ---------------------------------------------------------------- creating
@@ -145,7 +152,7 @@ class ModelService:
         # version): built here, where a cold solve is paid anyway, not in the first change
         name_index(rec.lp, "col_names")
         name_index(rec.lp, "row_names")
-        self.cache.put(model_id, 1, rec, engine_state=getattr(res, "state", None))
+        self.cache.put(cache_id(head), 1, rec, engine_state=getattr(res, "state", None))
         observe_solve(rec.result["solve"])
         return Outcome(head, rec, created=True, timings=timings)
 
@@ -182,7 +189,7 @@ class ModelService:
                     return self._replay(head, done)
             if if_match is not None and "*" not in if_match and head.etag not in if_match:
                 raise PreconditionFailed(head)
-            cached = self.cache.get(model_id, head.version)
+            cached = self.cache.get(cache_id(head), head.version)
             if cached is not None:
                 prior, state = cached.record, cached.engine_state
             else:
@@ -227,7 +234,7 @@ class ModelService:
             except AlreadyApplied as done:
                 return self._replay(head, done.version)
             timings["store"] = timings.get("store", 0.0) + time.perf_counter() - t
-            self.cache.put(model_id, new_head.version, rec, engine_state=getattr(res, "state", None))
+            self.cache.put(cache_id(new_head), new_head.version, rec, engine_state=getattr(res, "state", None))
             observe_solve(rec.result["solve"])  # counted once, for the solve that was stored
             return Outcome(new_head, rec, created=True, timings=timings, attempts=attempt)
         raise TooMuchContention(f"gave up after {self.max_attempts} attempts")

@@ -8,6 +8,8 @@ import orjson
 import pytest
 from conftest import PIVOT_FIELDS, auth, juice_network, reference_objective, snapshot
 
+from service.operations import cache_id
+
 MERGE = "application/merge-patch+json"
 
 
@@ -214,11 +216,39 @@ def test_idempotent_create_and_recovery_after_a_lost_record(client, rclient):
     assert client.get("/v1/models", headers=auth()).get_json()["total"] == 1
 
 
+def test_a_model_created_again_under_its_id_is_not_answered_from_another_workers_cache(redis_url, rclient):
+    """Two workers (two apps on one Redis). Worker B caches version 2 of a model; worker A deletes
+    it and creates another model under the same id (same Idempotency-Key once its record is gone)
+    and changes it to version 2. B's next change must start from the new model, not from its
+    cached version 2 of the old one."""
+    from conftest import TENANT_KEYS
+
+    from service.app import create_app
+
+    config = {"TESTING": True, "REDIS_URL": redis_url, "API_KEYS": {k: t for t, k in TENANT_KEYS.items()}}
+    a, b = create_app(config).test_client(), create_app(config).test_client()
+    key = {"Idempotency-Key": "juice-plan-7"}
+    mid = a.post("/v1/models", json=juice_network(), headers={**auth(), **key}).get_json()["id"]
+    assert patch(b, mid, {"constraints": {"demand_cafe_a": {"lower": 31}}}).status_code == 200
+    assert a.delete(f"/v1/models/{mid}", headers=auth()).status_code == 204
+    for k in rclient.keys("{hbi:*"):
+        rclient.delete(k)
+    second = juice_network()
+    second["variables"]["ship_press_north_market"]["cost"] = 9  # another model under the same id
+    assert a.post("/v1/models", json=second, headers={**auth(), **key}).get_json()["id"] == mid
+    assert patch(a, mid, {"constraints": {"demand_cafe_b": {"lower": 26}}}).get_json()["version"] == 2
+    resp = patch(b, mid, {"constraints": {"demand_market": {"lower": 46}}})
+    assert resp.status_code == 200 and resp.get_json()["version"] == 3
+    doc = current_doc(b, mid)
+    assert doc["variables"]["ship_press_north_market"]["cost"] == 9
+    assert doc["constraints"]["demand_cafe_b"]["lower"] == 26 and doc["constraints"]["demand_cafe_a"]["lower"] == 30
+
+
 def test_hot_versions_keep_the_engine_state_for_the_next_change(app, client):
     mid = new_model(client)
     patch(client, mid, {"constraints": {"lane_cap": {"terms": {"ship_press_south_market": 1}, "upper": 30}}})
-    cache = app.extensions["hotbasis"].service.cache
-    entry = cache.get(mid, 2)
+    service = app.extensions["hotbasis"].service
+    entry = service.cache.get(cache_id(service.store.head(mid)), 2)
     assert entry is not None and entry.record.version == 2
     assert entry.engine_state is not None  # the warm solve's state, handed to the next reoptimize
     resp = patch(client, mid, {"constraints": {"lane_cap": {"upper": 25}}})
