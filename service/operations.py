@@ -165,6 +165,7 @@ class ModelService:
         if_match: list[str] | None = None,
         op_id: str | None = None,
         extra: dict[str, Any] | None = None,
+        head: Head | None = None,
     ) -> Outcome:
         """Apply a merge patch on the latest version, re-optimize warm, commit as the next version.
 
@@ -177,12 +178,17 @@ class ModelService:
         concurrent changes are serialized and none is lost. With ``if_match``
         (a list of acceptable ETags, or ["*"]) a stale version raises
         PreconditionFailed instead. An invalid patch raises DocumentError
-        before anything is stored.
+        before anything is stored. ``head``: the caller's just-read head of the
+        model, used for the first attempt instead of reading it again.
         """
         timings: dict[str, float] = {}
+        # the caller's fresh read of the head can serve the first attempt (one Redis read fewer); not
+        # under If-Match, which must be judged against the head as read here
+        usable = head is not None and if_match is None and head.tenant == tenant and head.model_id == model_id
+        known = head if usable else None
         for attempt in range(1, self.max_attempts + 1):
             t = time.perf_counter()
-            head = self.head(tenant, model_id)
+            head = known if attempt == 1 and known is not None else self.head(tenant, model_id)
             if op_id:
                 done = self.store.op_version(model_id, op_id)
                 if done is not None:

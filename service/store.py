@@ -235,7 +235,10 @@ def _row_pieces(A, old=None, old_digests: list[str] | None = None) -> list[Piece
         C = A.tocsc()
         tail = C.indices >= r_start  # the tail rows' entries, column by column
         cols = np.repeat(np.arange(A.shape[1]), np.diff(C.indptr))[tail]
-        R = sp.csr_matrix((C.data[tail], (C.indices[tail] - r_start, cols)), shape=(m - r_start, A.shape[1]))
+        rows = C.indices[tail] - r_start
+        order = np.lexsort((cols, rows))  # by row, then column: CSR order, sorted within rows
+        ptr = np.concatenate([[0], np.cumsum(np.bincount(rows, minlength=m - r_start))])
+        R = sp.csr_matrix((C.data[tail][order], cols[order], ptr), shape=(m - r_start, A.shape[1]))
     else:
         R = A.tocsr()
     R.sort_indices()  # one byte form for one matrix, so equal pieces share a blob

@@ -399,7 +399,7 @@ def _patch(model_id: str, section: str | None) -> Response:
             deferred = jobs.defer_patch(head, patch, if_match, query)
             if deferred is not None:  # Prefer: respond-async, or a model above the size for jobs
                 return deferred
-            outcome = _service().patch(g.tenant, model_id, patch, if_match=if_match, op_id=op_id)
+            outcome = _service().patch(g.tenant, model_id, patch, if_match=if_match, op_id=op_id, head=head)
         except DocumentError as exc:
             if section is not None:  # point into the body that was sent: the map alone
                 prefix = "/" + section
