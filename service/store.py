@@ -5,7 +5,9 @@ so every key of one model lives in one slot and a transaction over them is
 legal on a cluster):
 
     {hb:<id>}:head        hash: tenant, version, first_version, created_at, updated_at, name, cold_engine
-    {hb:<id>}:v:<n>       hash: version n: model arrays, basis, solution arrays, result JSON, summary JSON
+    {hb:<id>}:v:<n>       hash: version n: refs to its pieces, basis, result JSON (zlib), summary JSON
+    {hb:<id>}:blob:<d>    one piece of an array (content-addressed), counted in {hb:<id>}:blobrefs
+    {hb:<id>}:stage:<r>   a version's fields while its commit runs (renamed to v:<n> or deleted)
     {hb:<id>}:ops         hash: operation id (idempotency key digest or job id) -> version it produced
     {hb:<id>}:opt         sorted set: operation id by time, to expire entries of :ops
     {hbt:<tenant>}:models sorted set: the tenant's model ids by creation time (listing)
@@ -16,8 +18,9 @@ Encodings: numpy arrays as raw little-endian buffers (explicit dtypes), the
 basis as ``Basis.to_bytes``, names as UTF-8 joined by newlines (names are
 printable, so they hold no newline), small records as JSON. Never pickle.
 
-Writes are compare-and-set on the model's version: WATCH the head, check the
-version the caller worked from, then MULTI/EXEC. A lost race raises
+Writes are compare-and-set on the model's version: a new version is one
+MULTI/EXEC ending in COMMIT_LUA, which checks the version the caller worked
+from (creating and deleting a model use WATCH on the head). A lost race raises
 VersionConflict and the caller re-applies its change on the new version.
 
 Redis Cluster: every transaction (and every script) touches the keys of one
