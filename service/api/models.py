@@ -469,6 +469,10 @@ def get_version(model_id: str, number: int) -> Response:
         raise ApiError(
             404, "version-not-found", "Version not found", f"version {number} is not kept"
         ) from None
+    from service.api import toolkit  # imports this module
+
+    if toolkit.wants_mps():  # Accept: text/x-mps: that version's model as MPS, as for the latest
+        return toolkit.mps_response(head, rec)
     body: dict[str, Any] = {"id": head.model_id, "version": number, "created_at": rec.created_at}
     if query["include_model"]:
         body["model"] = to_document(rec.lp)

@@ -411,3 +411,27 @@ def test_mps_export_round_trip(client):
         assert got["objective"] == pytest.approx(reference_objective(doc))  # reference: linprog
         names = client.get(f"/v1/models/{got['id']}", headers=auth()).get_json()["model"]["variables"]
         assert set(names) == set(doc["variables"])
+
+
+def test_mps_export_of_a_kept_version(client):
+    """Accept: text/x-mps on /versions/{n} gives that version's model, not the latest one."""
+    doc = juice_network()
+    mid = create(client, doc)
+    changed = client.patch(
+        f"/v1/models/{mid}",
+        data=orjson.dumps({"constraints": {"capacity_press_north": {"upper": 50}}}),
+        headers={**auth(), "Content-Type": "application/merge-patch+json"},
+    )
+    assert changed.status_code == 200 and changed.get_json()["version"] == 2
+    texts = {}
+    for n in (1, 2):
+        resp = client.get(f"/v1/models/{mid}/versions/{n}", headers={**auth(), "Accept": MPS})
+        assert resp.status_code == 200 and resp.mimetype == MPS and resp.headers["ETag"] == f'"v{n}-mps"'
+        texts[n] = resp.get_data(as_text=True)
+    assert texts[1] != texts[2]
+    old = client.post("/v1/models", data=texts[1].encode(), content_type=MPS, headers=auth())
+    assert old.status_code == 201
+    assert old.get_json()["objective"] == pytest.approx(reference_objective(doc))  # reference: linprog
+    doc["constraints"]["capacity_press_north"]["upper"] = 50
+    new = client.post("/v1/models", data=texts[2].encode(), content_type=MPS, headers=auth())
+    assert new.get_json()["objective"] == pytest.approx(reference_objective(doc))  # reference: linprog
