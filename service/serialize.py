@@ -217,16 +217,16 @@ def solution_json(
 
     col_status = _STATUS_LOOKUP[basis.col_status[cols]].tolist() if basis is not None else [None] * cols.size
     row_status = _STATUS_LOOKUP[basis.row_status[rows]].tolist() if basis is not None else [None] * rows.size
-    col_names, row_names = lp.col_names, lp.row_names
+    # the whole plan names every entry in order: zip the name lists themselves (no index lookups)
+    col_names = lp.col_names if view == "full" else [lp.col_names[j] for j in cols.tolist()]
+    row_names = lp.row_names if view == "full" else [lp.row_names[i] for i in rows.tolist()]
     variables = {
-        col_names[j]: {"value": v, "reduced_cost": d, "basis": s}
-        for j, v, d, s in zip(cols.tolist(), pick(sol.x, cols), pick(sol.reduced_cost, cols), col_status)
+        name: {"value": v, "reduced_cost": d, "basis": s}
+        for name, v, d, s in zip(col_names, pick(sol.x, cols), pick(sol.reduced_cost, cols), col_status)
     }
     constraints = {
-        row_names[i]: {"activity": a, "shadow_price": y, "basis": s}
-        for i, a, y, s in zip(
-            rows.tolist(), pick(sol.row_activity, rows), pick(sol.shadow_price, rows), row_status
-        )
+        name: {"activity": a, "shadow_price": y, "basis": s}
+        for name, a, y, s in zip(row_names, pick(sol.row_activity, rows), pick(sol.shadow_price, rows), row_status)
     }
     return {"variables": variables, "constraints": constraints}
 
