@@ -6,7 +6,8 @@
 - ``GET /v1/models/{id}`` with ``Accept: text/x-mps``: the model as free-format MPS (see ``mps_response``).
 
 Conflicts and ranges are computed on demand from the stored version (model, basis, plan) and kept in
-a small per-process cache keyed by (model id, version): versions never change, so the key says all.
+a small per-process cache keyed by (model, version), the model named by id and creation time
+(``operations.cache_id``): versions never change, and a model created again under its id is another.
 """
 
 from __future__ import annotations
@@ -39,7 +40,7 @@ from service.api.schemas import ResultQuery
 from service.lp.conflict import NotInfeasible, find_conflict
 from service.lp.mps import write_mps
 from service.lp.ranging import compute_ranging
-from service.operations import PreconditionFailed, TooMuchContention
+from service.operations import PreconditionFailed, TooMuchContention, cache_id
 from service.store import Head, ModelNotFound, VersionRecord
 
 bp = Blueprint("toolkit", __name__, url_prefix="/v1")
@@ -59,7 +60,7 @@ class VersionQuery(Schema):
 
 
 class _Answers:
-    """A small LRU of computed answers keyed by (model id, version, kind); thread-safe."""
+    """A small LRU of computed answers keyed by (operations.cache_id, version, kind); thread-safe."""
 
     def __init__(self, size: int) -> None:
         self.size = size
@@ -139,7 +140,7 @@ def conflict(model_id: str) -> Response:
     head, rec = _load(model_id, query["version"])
     if rec.result["status"] != "infeasible":
         raise _wrong_status(rec, "infeasible", "a conflict")
-    key = (head.model_id, rec.version, "conflict")
+    key = (cache_id(head), rec.version, "conflict")
     body = ANSWERS.get(key)
     if body is None:
         body = conflict_json(head.model_id, rec, _service().options)
@@ -196,7 +197,7 @@ def sensitivity(model_id: str) -> Response:
         or sol.reduced_cost is None
     ):
         raise _wrong_status(rec, "optimal", "ranging")
-    key = (head.model_id, rec.version, "sensitivity")
+    key = (cache_id(head), rec.version, "sensitivity")
     body = ANSWERS.get(key)
     if body is None:
         body = sensitivity_json(head.model_id, rec)

@@ -435,3 +435,22 @@ def test_mps_export_of_a_kept_version(client):
     doc["constraints"]["capacity_press_north"]["upper"] = 50
     new = client.post("/v1/models", data=texts[2].encode(), content_type=MPS, headers=auth())
     assert new.get_json()["objective"] == pytest.approx(reference_objective(doc))  # reference: linprog
+
+
+def test_sensitivity_of_a_model_created_again_under_its_id_is_its_own(client, rclient):
+    """A model deleted and created again under the same id (same Idempotency-Key once its record is
+    gone) is another model: its ranging must not be the cached answer computed for the old one."""
+    key = {"Idempotency-Key": "wyndor-plan-3"}
+    mid = client.post("/v1/models", json=wyndor(), headers={**auth(), **key}).get_json()["id"]
+    first = client.get(f"/v1/models/{mid}/sensitivity", headers=auth()).get_json()
+    assert first["variables"]["doors"]["cost"] == 3
+    assert client.delete(f"/v1/models/{mid}", headers=auth()).status_code == 204
+    for k in rclient.keys("{hbi:*"):
+        rclient.delete(k)
+    second = wyndor()
+    second["variables"]["doors"]["cost"] = 4
+    resp = client.post("/v1/models", json=second, headers={**auth(), **key})
+    assert resp.status_code == 201 and resp.get_json()["id"] == mid
+    body = client.get(f"/v1/models/{mid}/sensitivity", headers=auth()).get_json()
+    assert body["variables"]["doors"]["cost"] == 4
+    assert body["objective"] == pytest.approx(reference_objective(second))  # reference: linprog
