@@ -116,3 +116,42 @@ def test_warm_state_after_a_cold_highs_solve(name):
     assert out.status == ref.status
     if ref.status == "optimal":
         assert abs(out.objective - ref.objective) <= 1e-6 * max(1.0, abs(ref.objective))
+
+
+def _small(m0: int, c: np.ndarray):
+    from service.lp import LinearProgram
+
+    n = c.size
+    A = np.array([[1.0, 2.0, 0.0, 1.0], [0.0, 1.0, 1.0, 0.0]])[:m0]
+    return LinearProgram(A=A, c=c, col_lower=np.zeros(n), col_upper=np.full(n, 5.0),
+                         row_lower=np.full(m0, -np.inf), row_upper=np.full(m0, 4.0))  # fmt: skip
+
+
+@pytest.mark.parametrize(
+    "m0, c",
+    [(0, [1.0, -1.0, 2.0, -2.0]), (2, [1.0, 1.0, 1.0, 1.0]), (2, [-1.0, -1.0, -1.0, -1.0])],
+    ids=["no-rows-before", "only-logicals-basic", "structurals-basic"],
+)
+def test_bordered_reuse_with_several_rows_one_of_them_empty(m0, c):
+    """Three rows appended at once (one without entries) onto a model with no rows, a basis of
+    logicals only, or structurals in the basis: the wrapped factorization solves with the exact
+    basis matrix, and the answer equals a cold HiGHS solve (the reference)."""
+    from tests.lp.changes import add_rows
+
+    lp = _small(m0, np.array(c))
+    res = solve(lp, SolveOptions(engine="builtin"))
+    rows = [(np.array([1.0, 1.0, 0.0, 1.0]), -np.inf, 3.0), (np.zeros(4), -1.0, 1.0),
+            (np.array([1.0, 0.0, 1.0, 0.0]), -np.inf, 2.0)]  # fmt: skip
+    changed = add_rows(lp, rows)
+    basis, _ = remap(res.basis, lp.col_names, lp.row_names, changed)
+    sim = Simplex(changed, basis, SolveOptions(), state=res.state)
+    assert sim.reused
+    B = sim._basis_matrix(sim.basic_idx).toarray()
+    rng = np.random.default_rng(3)
+    a = rng.standard_normal(changed.m)
+    assert sim.factor.ftran(a) == pytest.approx(np.linalg.solve(B, a), abs=1e-12)
+    assert sim.factor.btran(a) == pytest.approx(np.linalg.solve(B.T, a), abs=1e-12)
+    out = reoptimize(changed, basis, SolveOptions(), state=res.state)
+    ref = solve(changed)
+    assert _reused(out) and out.status == ref.status == "optimal" and out.check["passed"]
+    assert out.objective == pytest.approx(ref.objective, abs=1e-9)
