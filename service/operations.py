@@ -230,7 +230,9 @@ class ModelService:
                 rec.result.update(extra)
                 rec.summary["changes"] = {**(rec.summary["changes"] or {}), **extra}
             try:
-                new_head = self.store.commit(model_id, head.version, rec, op_id=op_id, prior=prior)
+                new_head = self.store.commit(
+                    model_id, head.version, rec, op_id=op_id, prior=prior, created_at=head.created_at
+                )
             except VersionConflict:
                 timings["store"] = timings.get("store", 0.0) + time.perf_counter() - t
                 if if_match is not None and "*" not in if_match:

@@ -555,7 +555,9 @@ return {allowed, wait}
 #
 # KEYS: head, blob counts, ops, ops by time, staging hash.
 # ARGV: expected version, versions kept, now, operation id or "", stale-ops cutoff, key prefix of
-#       the model ("{hb:<id>}:"), model name, the digests sent (comma-separated).
+#       the model ("{hb:<id>}:"), model name, the digests sent (comma-separated), the model's
+#       expected creation time as stored (or "": any), so a model deleted and created again under
+#       the same id at the same version number is not taken for the one the change was made on.
 COMMIT_LUA = """
 local head, counts_key, ops_key, opt_key, stage = KEYS[1], KEYS[2], KEYS[3], KEYS[4], KEYS[5]
 local expected, keep = tonumber(ARGV[1]), tonumber(ARGV[2])
@@ -594,7 +596,7 @@ if op_id ~= '' then
   if done then return refuse('applied', done) end
 end
 local version = tonumber(st[1])
-if version ~= expected then return refuse('conflict', st[1]) end
+if version ~= expected or (ARGV[9] ~= '' and st[4] ~= ARGV[9]) then return refuse('conflict', st[1]) end
 local old_first = tonumber(st[2])
 local new = version + 1
 local first = math.max(old_first, new - keep + 1)
@@ -988,6 +990,7 @@ class Store:
         record: VersionRecord,
         op_id: str | None = None,
         prior: VersionRecord | None = None,
+        created_at: float | None = None,
     ) -> Head:
         """Store ``record`` as version expected_version + 1 if the model is still at expected_version.
 
@@ -995,6 +998,8 @@ class Store:
         the blob counts. ``prior``, the version the caller worked from (with its
         ``digests``), lets the pieces it already stores be named instead of
         encoded, hashed and sent.
+        ``created_at``: the model's creation time as read with its head; a model
+        deleted and created again under the same id since then is a conflict.
         Raises VersionConflict when another write came first, AlreadyApplied
         when ``op_id`` was committed before, ModelNotFound when the model is gone.
         """
@@ -1016,7 +1021,8 @@ class Store:
         ]
         for _attempt in range(2):
             args = [expected_version, self.keep, repr(now), op_id or "", repr(now - self.op_ttl),
-                    f"{{hb:{model_id}}}:", record.lp.name, ",".join(send)]  # fmt: skip
+                    f"{{hb:{model_id}}}:", record.lp.name, ",".join(send),
+                    "" if created_at is None else repr(created_at)]  # fmt: skip
             with self.r.pipeline(transaction=True) as pipe:
                 for d in send:
                     pipe.set(self._blob(model_id, d), blobs[d])

@@ -289,7 +289,12 @@ def serve_metrics(port: int, bind: str = "0.0.0.0") -> ThreadingHTTPServer:
             if self.path.split("?")[0] != "/metrics":
                 self.send_error(404)
                 return
-            body = metrics.render()
+            try:
+                body = metrics.render()
+            except Exception:  # a scrape must not take the worker's thread down with it
+                log.exception("metrics could not be rendered")
+                self.send_error(500)
+                return
             self.send_response(200)
             self.send_header("Content-Type", metrics.CONTENT_TYPE_LATEST)
             self.send_header("Content-Length", str(len(body)))

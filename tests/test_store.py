@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import threading
+import time
 
 import numpy as np
 import pytest
@@ -593,3 +594,20 @@ def test_a_commit_whose_script_fails_in_its_transaction_leaves_no_staging_hash_o
     with pytest.raises(redis.ResponseError):
         store.commit(mid, 3, record(changed))
     assert snapshot(rclient) == before
+
+
+def test_a_model_created_again_under_its_id_does_not_take_a_change_made_on_the_old_one(store, rclient):
+    """The commit checks the model's creation time as well as its version: a change computed on a
+    model that was deleted and created again (same id, same version number) meanwhile is refused."""
+    lp = from_document(DOC)
+    mid = new_model_id()
+    old_head = store.create(mid, "acme", record(lp))
+    assert store.delete(mid)
+    time.sleep(0.01)  # another creation time
+    store.create(mid, "acme", record(lp, note="second life"))
+    before = snapshot(rclient)
+    with pytest.raises(VersionConflict):
+        store.commit(mid, 1, record(lp, note="made on the first"), created_at=old_head.created_at)
+    assert snapshot(rclient) == before
+    head = store.commit(mid, 1, record(lp), created_at=store.head(mid).created_at)
+    assert head.version == 2

@@ -250,13 +250,14 @@ class Simplex:
             add_rows = (A.indices[new] - m0).astype(np.int64)
             cols = np.repeat(np.arange(n), per_col)
             vals = A.data[new] * S[cols]
-            logs = np.log2(np.abs(vals) + 1e-300)
+            nz = vals != 0.0  # explicit zeros carry no scale (as in compute_scaling)
+            logs = np.log2(np.abs(vals[nz]))
             rmax = np.full(m - m0, -np.inf)
             rmin = np.full(m - m0, np.inf)
-            np.maximum.at(rmax, add_rows, logs)
-            np.minimum.at(rmin, add_rows, logs)
+            np.maximum.at(rmax, add_rows[nz], logs)
+            np.minimum.at(rmin, add_rows[nz], logs)
             has = np.isfinite(rmax)
-            R_new[has] = np.exp2(np.round(-0.5 * (rmax[has] + rmin[has])))
+            R_new[has] = np.exp2(np.round(np.clip(-0.5 * (rmax[has] + rmin[has]), -60, 60)))
             vals = vals * R_new[add_rows]
             old_A = state.A_scaled
             ptr, idx, val = kernels.append_rows_csc(

@@ -155,3 +155,32 @@ def test_bordered_reuse_with_several_rows_one_of_them_empty(m0, c):
     ref = solve(changed)
     assert _reused(out) and out.status == ref.status == "optimal" and out.check["passed"]
     assert out.objective == pytest.approx(ref.objective, abs=1e-9)
+
+
+def test_an_explicit_zero_in_an_appended_row_does_not_set_its_scale():
+    """Scaling an appended row with the kept column scales skips stored zeros, as compute_scaling
+    does for the whole matrix: the same row with and without an explicit 0.0 gets the same scale
+    (a zero once counted as 2^-996 and scaled the row by about 2^498)."""
+    import scipy.sparse as sp
+
+    from tests.lp.changes import add_rows
+
+    lp = _small(2, np.array([-1.0, -1.0, -1.0, -1.0]))
+    res = solve(lp, SolveOptions(engine="builtin"))
+    changed = add_rows(lp, [(np.array([1.0, 0.0, 3.0, 0.0]), -np.inf, 3.0)])
+    with_zero = changed.copy()
+    A = changed.A.tocoo()
+    with_zero.A = sp.csc_matrix(  # the same matrix plus a stored 0.0 in the new row
+        (np.append(A.data, 0.0), (np.append(A.row, changed.m - 1), np.append(A.col, 1))), shape=A.shape
+    )
+    assert with_zero.A.nnz == changed.A.nnz + 1
+    scales = []
+    for model in (changed, with_zero):
+        basis, _ = remap(res.basis, lp.col_names, lp.row_names, model)
+        sim = Simplex(model, basis, SolveOptions(), state=res.state)
+        assert sim.reused
+        scales.append(sim.sc.row[-1])
+    assert scales[0] == scales[1]
+    out = reoptimize(with_zero, remap(res.basis, lp.col_names, lp.row_names, with_zero)[0], SolveOptions(),
+                     state=res.state)  # fmt: skip
+    assert out.objective == pytest.approx(solve(changed).objective, abs=1e-9)  # reference: cold HiGHS
