@@ -49,7 +49,7 @@ from redis.retry import Retry
 from redis.sentinel import Sentinel
 
 from service.lp.basis import Basis
-from service.lp.model import LinearProgram
+from service.lp.model import LinearProgram, rows_appended
 
 KEEP_VERSIONS = 20
 OP_TTL = 24 * 3600  # seconds an operation id (idempotency key, job id) is remembered per model
@@ -231,7 +231,7 @@ def _row_pieces(A, old=None, old_digests: list[str] | None = None) -> list[Piece
     m = A.shape[0]
     first = 0
     known = _carried(old_digests, -(-old.shape[0] // ROW_PIECE)) if old is not None else None
-    if known is not None and _rows_appended(A, old):
+    if known is not None and rows_appended(A, old, bitwise=True):
         first = old.shape[0] // ROW_PIECE  # the old full blocks
     r_start = first * ROW_PIECE
     if r_start:
@@ -256,21 +256,6 @@ def _row_pieces(A, old=None, old_digests: list[str] | None = None) -> list[Piece
             + _buf(R.data[p0:p1], F8)
         )
     return out
-
-
-def _rows_appended(A, old) -> bool:
-    """True when ``A`` (CSC, sorted indices) is ``old`` with rows appended below."""
-    A, old = A.tocsc(), old.tocsc()
-    m0 = old.shape[0]
-    if old.shape[1] != A.shape[1] or A.shape[0] < m0 or not (A.has_sorted_indices and old.has_sorted_indices):
-        return False
-    top = A.indices < m0
-    counted = np.concatenate([[0], np.cumsum(top)])
-    return bool(
-        np.array_equal(counted[A.indptr[1:]] - counted[A.indptr[:-1]], np.diff(old.indptr))
-        and np.array_equal(A.indices[top], old.indices)
-        and np.array_equal(A.data[top].view(I8), old.data.view(I8))
-    )
 
 
 def _matrix_from_rows(pieces: list[bytes], m: int, n: int):
@@ -458,7 +443,6 @@ PIECE_FIELDS = (
 _LEGACY_BLOB_FIELDS = ("lp.indptr", "lp.indices", "lp.data")
 REF = "ref."
 REF_FIELDS = tuple(REF + name for name in PIECE_FIELDS + _LEGACY_BLOB_FIELDS)
-_NAME_FIELDS = (b"lp.col_names", b"lp.row_names")
 
 
 def split_blobs(fields: Fields) -> tuple[dict[str, bytes], dict[str, bytes]]:
@@ -484,6 +468,11 @@ def split_blobs(fields: Fields) -> tuple[dict[str, bytes], dict[str, bytes]]:
 
 def ref_digests(value: bytes | None) -> list[str]:
     return [d for d in value.decode().split(",") if d] if value else []
+
+
+def _field_digests(fields: dict[str, bytes]) -> dict[str, list[str]]:
+    """The pieces' digests by field of a version as split_blobs wrote it (``VersionRecord.digests``)."""
+    return {k[len(REF) :]: ref_digests(v) for k, v in fields.items() if k.startswith(REF)}
 
 
 # ------------------------------------------------------------------------------ ids
@@ -805,49 +794,6 @@ class Store:
     def _blobrefs(mid: str) -> str:
         return f"{{hb:{mid}}}:blobrefs"
 
-    def _plan_blobs(
-        self, pipe: Any, mid: str, blobs: dict[str, bytes], dropped: list[set[str]]
-    ) -> list[tuple[str, Any]]:
-        """Blob writes for a version that uses ``blobs`` while versions using ``dropped`` go.
-
-        Read before MULTI (under the head's WATCH, which every writer of this
-        model takes, so the counts cannot move underneath); returns the commands
-        to queue inside the transaction.
-        """
-        involved = sorted(set(blobs).union(*dropped)) if (blobs or dropped) else []
-        if not involved:
-            return []
-        counts = {d: int(c or 0) for d, c in zip(involved, pipe.hmget(self._blobrefs(mid), involved))}
-        after = dict(counts)
-        for d in blobs:
-            after[d] += 1
-        for refs in dropped:
-            for d in refs:
-                after[d] -= 1
-        ops: list[tuple[str, tuple, dict]] = []
-        counted: dict[str, int] = {}
-        gone: list[str] = []
-        for d in involved:
-            if after[d] > 0:
-                if counts[d] == 0:
-                    ops.append(("set", (self._blob(mid, d), blobs[d]), {}))
-                if after[d] != counts[d]:
-                    counted[d] = after[d]
-            else:
-                gone.append(d)
-        # one command each for the counts and the releases (a version has hundreds of pieces)
-        if counted:
-            ops.append(("hset", (self._blobrefs(mid),), {"mapping": counted}))
-        if gone:
-            ops.append(("hdel", (self._blobrefs(mid), *gone), {}))
-            ops.append(("delete", tuple(self._blob(mid, d) for d in gone), {}))
-        return ops
-
-    @staticmethod
-    def _queue(pipe: Any, ops: list[tuple[str, tuple, dict]]) -> None:
-        for name, args, kwargs in ops:
-            getattr(pipe, name)(*args, **kwargs)
-
     @staticmethod
     def _index(tenant: str) -> str:
         return f"{{hbt:{tenant}}}:models"
@@ -956,9 +902,17 @@ class Store:
                 pipe.watch(head_key)
                 if pipe.exists(head_key):
                     raise ModelExists(model_id)
-                blob_ops = self._plan_blobs(pipe, model_id, blobs, [])
+                # counts read under the WATCH: a blob left under this id keeps its bytes and gains a count
+                digests = list(blobs)
+                counts = (
+                    [int(c or 0) for c in pipe.hmget(self._blobrefs(model_id), digests)] if digests else []
+                )
                 pipe.multi()
-                self._queue(pipe, blob_ops)
+                for d, c in zip(digests, counts):
+                    if c == 0:
+                        pipe.set(self._blob(model_id, d), blobs[d])
+                if digests:
+                    pipe.hset(self._blobrefs(model_id), mapping={d: c + 1 for d, c in zip(digests, counts)})
                 pipe.hset(self._ver(model_id, 1), mapping=fields)
                 pipe.hset(
                     head_key,
@@ -978,7 +932,7 @@ class Store:
                 pipe.execute()
             except redis.WatchError as exc:
                 raise ModelExists(model_id) from exc
-        record.digests = {k[len(REF) :]: ref_digests(v) for k, v in fields.items() if k.startswith(REF)}
+        record.digests = _field_digests(fields)
         # the listing lives in the tenant's slot, so it cannot join the transaction above
         self.r.zadd(self._index(tenant), {model_id: now})
         return Head(model_id, tenant, 1, 1, now, now, record.lp.name, cold_engine)
@@ -1056,7 +1010,7 @@ class Store:
             raise StoreError(f"commit of model {model_id}: {outcome}")
         new, first = int(reply[1]), int(reply[2])
         tenant, created_at, cold_engine = (b.decode() for b in reply[3:6])
-        record.digests = {k[len(REF) :]: ref_digests(v) for k, v in fields.items() if k.startswith(REF)}
+        record.digests = _field_digests(fields)
         return Head(model_id, tenant, new, first, float(created_at), now, record.lp.name, cold_engine)
 
     def _release(self, model_id: str, stage: str, sent: list[str]) -> None:

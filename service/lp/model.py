@@ -113,3 +113,22 @@ class LinearProgram:
         bad = [self.col_names[j] for j in np.flatnonzero(self.col_lower > self.col_upper)]
         bad += [self.row_names[i] for i in np.flatnonzero(self.row_lower > self.row_upper)]
         return bad
+
+
+def rows_appended(A: sp.csc_matrix, old: sp.csc_matrix, bitwise: bool = False) -> bool:
+    """True when ``A`` is ``old`` with rows appended below (both CSC with sorted indices, as every
+    LinearProgram holds its matrix): the first rows of A hold exactly old's entries. ``bitwise``
+    compares the values bit for bit (-0.0 is not 0.0), for callers that reuse stored bytes."""
+    m0 = old.shape[0]
+    if old.shape[1] != A.shape[1] or A.shape[0] < m0 or not (A.has_sorted_indices and old.has_sorted_indices):
+        return False
+    top = A.indices < m0
+    counted = np.concatenate([[0], np.cumsum(top)])
+    if not np.array_equal(counted[A.indptr[1:]] - counted[A.indptr[:-1]], np.diff(old.indptr)):
+        return False
+    if not np.array_equal(A.indices[top], old.indices):
+        return False
+    values, old_values = A.data[top], old.data
+    if bitwise:
+        values, old_values = values.view(np.int64), old_values.view(np.int64)
+    return bool(np.array_equal(values, old_values))

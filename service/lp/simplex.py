@@ -46,7 +46,7 @@ import scipy.sparse as sp
 from . import kernels
 from .basis import Basis, Status
 from .factor import BorderedFactor, Factor, SingularBasis
-from .model import LinearProgram
+from .model import LinearProgram, rows_appended
 from .result import SolveOptions
 from .scaling import Scaling, compute_scaling, scale_matrix
 
@@ -190,6 +190,13 @@ class Simplex:
         """True when ``state``'s factorization fits: the model only gained rows
         (costs and bounds may differ), the basic set is the old one plus the new
         rows' logicals, and the cached factorization is still young."""
+        return Simplex._factor_fits(lp, basis, state, options) and Simplex.only_rows_appended(lp, state)
+
+    @staticmethod
+    def _factor_fits(
+        lp: LinearProgram, basis: Basis, state: EngineState | None, options: SolveOptions
+    ) -> bool:
+        """reuse_applies but for the matrix (only_rows_appended, the one check that reads all of A)."""
         if state is None or not options.scale:
             return False
         n, m = lp.n, lp.m
@@ -201,27 +208,12 @@ class Simplex:
         status = np.concatenate([basis.col_status, basis.row_status])
         basic_now = np.flatnonzero(status == BASIC)
         expected = np.sort(np.concatenate([state.basic_idx, n + np.arange(m0, m)]))
-        if basic_now.size != m or not np.array_equal(expected, basic_now):
-            return False
-        return Simplex.only_rows_appended(lp, state)
+        return basic_now.size == m and np.array_equal(expected, basic_now)
 
     @staticmethod
     def only_rows_appended(lp: LinearProgram, state: EngineState) -> bool:
         """True when ``lp``'s matrix is ``state``'s with rows appended (its scaling then still fits)."""
-        n, m = lp.n, lp.m
-        A, old = lp.A, state.A
-        m0 = old.shape[0]
-        if old.shape[1] != n or m < m0:
-            return False
-        # the first m0 rows of A must be exactly the old matrix (indices are sorted)
-        top = A.indices < m0
-        counted = np.concatenate([[0], np.cumsum(top)])
-        old_counts = counted[A.indptr[1:]] - counted[A.indptr[:-1]]
-        return bool(
-            np.array_equal(old_counts, np.diff(old.indptr))
-            and np.array_equal(A.indices[top], old.indices)
-            and np.array_equal(A.data[top], old.data)
-        )
+        return rows_appended(lp.A, state.A)
 
     def _reuse(self, state: EngineState) -> bool:
         """Adopt a previous solve's scaling and factorization (see reuse_applies).
@@ -231,9 +223,9 @@ class Simplex:
         rows scaled against the kept column scales), which spares recomputing
         it; the caller then factorizes afresh. Returns True when the
         factorization was adopted."""
-        full = self.reuse_applies(self.lp, self._basis_in, state, self.opt)
-        if not full and not self.only_rows_appended(self.lp, state):
+        if not self.only_rows_appended(self.lp, state):
             return False
+        full = self._factor_fits(self.lp, self._basis_in, state, self.opt)
         lp, n, m = self.lp, self.n, self.m
         A = lp.A
         m0 = state.A.shape[0]
