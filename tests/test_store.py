@@ -6,6 +6,7 @@ import threading
 import time
 
 import numpy as np
+import orjson
 import pytest
 from conftest import snapshot
 
@@ -328,8 +329,6 @@ def test_versions_written_in_the_whole_array_layout_still_load(store, rclient):
     """Stores written before the piecewise layout kept one blob per array and the plan inline."""
     import hashlib
 
-    import orjson
-
     lp = _wide_lp(40, 30)
     mid = new_model_id()
     store.create(mid, "acme", record(lp))  # a head and version 1 in the current layout
@@ -543,14 +542,8 @@ def test_the_result_is_stored_compressed_and_read_back_whole(store, rclient):
     rec.result["pivot_log"] = [{"iteration": k, "leaving": f"row {k}", "step": k / 7} for k in range(500)]
     store.create(mid, "acme", rec)
     raw = rclient.hget(f"{{hb:{mid}}}:v:1", "result.z")
-    assert raw is not None and len(raw) < len(orjson_dumps(rec.result)) / 3
+    assert raw is not None and len(raw) < len(orjson.dumps(rec.result)) / 3
     assert store.load(mid, 1).result == rec.result
-
-
-def orjson_dumps(value) -> bytes:
-    import orjson
-
-    return orjson.dumps(value)
 
 
 def test_a_version_pruned_while_it_is_read_reads_as_gone(store, rclient):
