@@ -94,24 +94,19 @@ class _EtaFile:
 
     def update(self, r: int, alpha_q: np.ndarray) -> None:
         """Record the basis change in row r with the FTRAN'd entering column."""
-        nz = np.flatnonzero(alpha_q)
-        nz = nz[nz != r]
         k, start = self._count, int(self._starts[self._count])
         if k + 1 >= self._rows.size:  # grow the per-record arrays
             size = 2 * self._rows.size
             self._rows = np.resize(self._rows, size)
             self._pivots = np.resize(self._pivots, size)
             self._starts = np.resize(self._starts, size + 1)
-        end = start + nz.size
-        if end > self._idx.size:
-            size = max(2 * self._idx.size, end)
+        if start + alpha_q.size > self._idx.size:  # room for a dense column
+            size = max(2 * self._idx.size, start + alpha_q.size)
             self._idx = np.resize(self._idx, size)
             self._vals = np.resize(self._vals, size)
         self._rows[k] = r
         self._pivots[k] = alpha_q[r]
-        self._idx[start:end] = nz
-        self._vals[start:end] = alpha_q[nz]
-        self._starts[k + 1] = end
+        self._starts[k + 1] = kernels.eta_append(alpha_q, r, self._idx, self._vals, start)
         self._count = k + 1
 
 
@@ -204,9 +199,21 @@ class Factor(_EtaFile):
         return self._solve_t(np.asarray(h, dtype=np.float64))
 
     def _solve(self, a: np.ndarray) -> np.ndarray:
-        rhs = np.ascontiguousarray(a.reshape(a.shape[0], -1))
-        v = kernels.lu_solve(*self._L, *self._U, self._Ud, self._src, self._dst, rhs)
-        return v.reshape(a.shape)
+        lu = (*self._L, *self._U, self._Ud, self._src, self._dst)
+        if a.ndim == 1:
+            v = np.empty(a.shape[0])
+            kernels.lu_solve_one(*lu, a, v)
+            return v
+        k = a.shape[1]
+        if k > 3:  # many right-hand sides: the general loop
+            return kernels.lu_solve(*lu, np.ascontiguousarray(a))
+        # one to three (a simplex pivot's FTRAN): the specialized kernels, in pairs
+        v = np.empty(a.shape)
+        for c in range(0, k - 1, 2):
+            kernels.lu_solve_pair(*lu, a[:, c], a[:, c + 1], v[:, c], v[:, c + 1])
+        if k % 2:
+            kernels.lu_solve_one(*lu, a[:, k - 1], v[:, k - 1])
+        return v
 
     def _solve_t(self, h: np.ndarray) -> np.ndarray:
         if h.ndim == 2:

@@ -155,6 +155,7 @@ class Simplex:
             self.A = scale_matrix(lp.A, self.sc) if options.scale else sp.csc_matrix(lp.A)
         R, S = self.sc.row, self.sc.col
         self.AT = sp.csr_matrix(self.A.T)  # row-wise copy for pivot rows
+        self._alpha_r = np.empty(n + m)  # the pivot row, see pivot_row
         self.cost_true = np.concatenate([lp.sense * lp.c * S, np.zeros(m)])
         self.cost = self.cost_true.copy()
         self.lower = np.concatenate([lp.col_lower / S, lp.row_lower * R])
@@ -296,6 +297,12 @@ class Simplex:
         """alpha_r = Af^T rho for all N variables."""
         return np.concatenate([self.AT @ rho, -rho])
 
+    def pivot_row(self, rho: np.ndarray) -> np.ndarray:
+        """alpha_r = Af^T rho with zeros at the basic variables (kernels.pivot_row),
+        written into one buffer that every pivot reuses."""
+        kernels.pivot_row(self.AT.indptr, self.AT.indices, self.AT.data, rho, self.status, self.n, self._alpha_r)
+        return self._alpha_r
+
     def times_af(self, v: np.ndarray) -> np.ndarray:
         """Af @ v."""
         return self.A @ v[: self.n] - v[self.n :]
@@ -349,9 +356,13 @@ class Simplex:
     # ------------------------------------------------------------- feasibility
     def primal_infeasibilities(self) -> np.ndarray:
         """Per basic row: amount below lower (negative) or above upper (positive)."""
+        return self._primal_infeasibilities_and_sum()[0]
+
+    def _primal_infeasibilities_and_sum(self) -> tuple[np.ndarray, float]:
+        """primal_infeasibilities and the sum of their magnitudes, in one pass."""
         out = np.empty(self.m)
-        kernels.primal_infeasibilities(self.x, self.basic_idx, self.lower, self.upper, out)
-        return out
+        total = kernels.primal_infeasibilities(self.x, self.basic_idx, self.lower, self.upper, out)
+        return out, total
 
     def dual_infeasibilities(self) -> np.ndarray:
         """Per variable: how far d is on the wrong side for its nonbasic status."""
@@ -391,12 +402,17 @@ class Simplex:
     def _kind(self, j: int) -> str:
         return "variable" if j < self.n else "constraint"
 
-    def _pivot_record(self, algorithm, p, leave_bound, q, pivot, step, flips, infeas=None, dinf=None) -> dict:
-        if infeas is None:
-            infeas = self.primal_infeasibilities()
-        pinf = np.abs(infeas).sum()
+    def _pivot_record(
+        self, algorithm, p, leave_bound, q, pivot, step, flips, pinf=None, dinf=None, objective=None
+    ) -> dict:
+        """One pivot-log entry. The sums (primal and dual infeasibility, the
+        objective in scaled terms) are computed here unless the caller has them."""
+        if pinf is None:
+            pinf = np.abs(self.primal_infeasibilities()).sum()
         if dinf is None:
             dinf = kernels.dual_infeasibility_sum(self.d, self.status)
+        if objective is None:
+            objective = self.objective()
         return {
             "iteration": self.iteration,
             "algorithm": algorithm,
@@ -407,7 +423,7 @@ class Simplex:
             "entering_kind": self._kind(q),
             "pivot": float(pivot) if pivot is not None else None,
             "step": float(step),
-            "objective": self.lp.sense * self.objective() + self.lp.offset,
+            "objective": self.lp.sense * objective + self.lp.offset,
             "primal_infeasibility": float(pinf),
             "dual_infeasibility": float(dinf),
             "bound_flips": int(flips),
@@ -425,7 +441,9 @@ class Simplex:
         self._visited.add(key)
         return False
 
-    def basis_change(self, r: int, q: int, alpha_q: np.ndarray, leave_status: int) -> None:
+    def basis_change(self, r: int, q: int, alpha_q: np.ndarray, leave_status: int) -> bool:
+        """Swap q into row r's basis position. True when that triggered a
+        refactorization (x, y and d were then recomputed from scratch)."""
         p = int(self.basic_idx[r])
         self.status[p] = FIXED if self.lower[p] == self.upper[p] else leave_status
         self.status[q] = BASIC
@@ -434,6 +452,8 @@ class Simplex:
         self.iteration += 1
         if self.factor.updates >= self.refactor_every:
             self.refactor("update_limit")
+            return True
+        return False
 
     # ================================================================ dual
     def shift_costs_for_dual_feasibility(self) -> int:
@@ -534,8 +554,7 @@ class Simplex:
             rho = self.factor.btran(e)
             if dse:
                 self.dse[r] = max(float(rho @ rho), 1e-12)
-            alpha_r = self.row_product(rho)
-            alpha_r[self.basic_idx] = 0.0
+            alpha_r = self.pivot_row(rho)
             q, t, flip_idx = self._dual_ratio_test(r, alpha_r, delta)
             if q < 0:
                 if self.factor.updates > 0:
@@ -567,11 +586,6 @@ class Simplex:
                 continue
             trouble = 0
             s = 1.0 if delta < 0 else -1.0
-            # dual update: d_j += s * t * alpha_rj; leaving variable gets s * t
-            if t != 0.0:
-                kernels.dual_step(self.d, self.y, alpha_r, rho, s * t)  # basics have alpha_r = 0
-            self.d[q] = 0.0
-            self.d[p] = s * t
             # bound flips, then the primal step that takes x_p to its violated bound
             bound = self.lower[p] if delta < 0 else self.upper[p]
             if flip_idx.size:
@@ -587,11 +601,23 @@ class Simplex:
             if dse:
                 kernels.update_dse(self.dse, alpha_q, np.ascontiguousarray(sol[:, 1]), piv, r)
             leave_status = AT_LOWER if delta < 0 else AT_UPPER
-            self.basis_change(r, q, alpha_q, leave_status)
+            refactored = self.basis_change(r, q, alpha_q, leave_status)
             self.x[p] = bound
-            infeas = self.primal_infeasibilities()
-            self.log("dual", p, "lower" if delta < 0 else "upper", q, piv, theta_p, flip_idx.size, infeas)
-            obj = float(self.cost @ self.x)
+            if refactored:  # x, y and d were recomputed from the new factorization
+                dinf = objective = None
+                obj = float(self.cost @ self.x)
+            else:
+                # dual update d_j += s * t * alpha_rj (zero at the old basics), the leaving
+                # variable's reduced cost s * t, the entering one's 0; the pivot log's sums
+                # come from the same pass (the update does not depend on the statuses)
+                self.d[p] = s * t
+                dinf, obj, objective = kernels.dual_update_sums(
+                    self.d, self.y, alpha_r, rho, s * t, self.status, self.cost, self.cost_true, self.x
+                )
+                self.d[q] = 0.0
+            infeas, pinf = self._primal_infeasibilities_and_sum()
+            self.log("dual", p, "lower" if delta < 0 else "upper", q, piv, theta_p, flip_idx.size,
+                     pinf, dinf, objective)  # fmt: skip
             if obj > best_obj + 1e-13 * (1.0 + abs(obj)):  # (best_obj starts at -inf)
                 best_obj = obj
                 since_progress = 0
@@ -735,7 +761,7 @@ class Simplex:
             e = np.zeros(self.m)
             e[r] = 1.0
             rho = self.factor.btran(e)
-            alpha_r = self.row_product(rho)
+            alpha_r = self.pivot_row(rho)  # zero at the basics (q is not one yet)
             if abs(piv) < self.opt.pivot_tol or abs(piv - alpha_r[q]) > 1e-6 * (1.0 + abs(piv)):
                 trouble += 1
                 if trouble > 3:
@@ -750,7 +776,6 @@ class Simplex:
             bound = self.lower[p] if leave_status == AT_LOWER else self.upper[p]
             # dual update along the pivot row
             dq = self.d[q]
-            alpha_r[self.basic_idx] = 0.0
             nz = np.flatnonzero(alpha_r)
             self.d[nz] -= (dq / piv) * alpha_r[nz]
             self.y += (dq / piv) * rho
