@@ -39,29 +39,47 @@ RULE_DANTZIG = 1
 RULE_SMALLEST_INDEX = 2
 
 
+@numba.njit(inline="always", **_JIT)
+def _dual_infeasibility(dj, st):
+    """How far reduced cost dj is on the wrong side for status st."""
+    if st == _AT_LOWER:
+        return -dj if dj < 0.0 else 0.0
+    if st == _AT_UPPER:
+        return dj if dj > 0.0 else 0.0
+    if st == _FREE:
+        return abs(dj)
+    return 0.0
+
+
 @numba.njit(**_JIT)
 def dual_ratio_test(
-    status, alpha_r, d, lower, upper, s, pivot_tol, dual_tol, primal_tol, slope, can_flip, bland
+    status, alpha_r, nz, count, d, lower, upper, s, pivot_tol, dual_tol, primal_tol, slope, can_flip, bland
 ):
     """Harris two-pass ratio test with bound flipping over one pivot row.
 
-    Candidates: nonbasic columns whose pivot-row entry (times s) moves the
-    leaving row toward feasibility, |entry| > pivot_tol. Rounds take, among
-    the candidates left, the group whose ratio is within the smallest Harris
-    bound; a group is flipped when the slope left pays for it (by more than
-    primal_tol), otherwise the group's largest |entry| enters (Bland: the
-    smallest index). Returns (q, t, flips); q = -1 when nothing can enter.
+    Only the row's nonzeros at nonbasic columns, nz[:count] in increasing
+    order (from pivot_row), are looked at. Candidates: nonbasic columns whose
+    pivot-row entry (times s) moves the leaving row toward feasibility,
+    |entry| > pivot_tol. Rounds take, among the candidates left, the group
+    whose ratio is within the smallest Harris bound; a group is flipped when
+    the slope left pays for it (by more than primal_tol), otherwise the
+    group's largest |entry| enters (Bland: the smallest index). Returns
+    (q, t, flips, dinf) with q = -1 when nothing can enter; dinf is the dual
+    infeasibility of the nz columns before the pivot (for the pivot log's
+    running sum, see dual_update).
     """
-    N = alpha_r.size
-    cand = np.empty(N, np.int64)
-    a_abs = np.empty(N)
-    ratio = np.empty(N)
-    harris = np.empty(N)
-    reach = np.empty(N)
+    cand = np.empty(count, np.int64)
+    a_abs = np.empty(count)
+    ratio = np.empty(count)
+    harris = np.empty(count)
+    reach = np.empty(count)
+    dinf = 0.0
     k = 0
-    for j in range(N):
+    for e in range(count):
+        j = _u(nz[e])
         st = status[j]
         a = alpha_r[j]
+        dinf += _dual_infeasibility(d[j], st)
         if st == _AT_LOWER:
             ok = (a < -pivot_tol) if s > 0 else (a > pivot_tol)
         elif st == _AT_UPPER:
@@ -87,7 +105,7 @@ def dual_ratio_test(
     flips = np.empty(k, np.int64)
     nflips = 0
     if k == 0:
-        return -1, 0.0, flips[:0]
+        return -1, 0.0, flips[:0], dinf
     alive = np.ones(k, np.bool_)
     left = k
     while left > 0:
@@ -121,9 +139,9 @@ def dual_ratio_test(
         t = ratio[best]
         if t < 0.0:
             t = 0.0
-        return cand[best], t, flips[:nflips]
+        return cand[best], t, flips[:nflips], dinf
     # every candidate could be flipped with slope to spare: dual unbounded
-    return -1, 0.0, flips[:0]
+    return -1, 0.0, flips[:0], dinf
 
 
 @numba.njit(**_JIT)
@@ -174,24 +192,19 @@ def dual_infeasibility_sum(d, status):
     """Sum over nonbasics of how far d is on the wrong side for the status."""
     total = 0.0
     for j in range(d.size):
-        st = status[j]
-        if st == _AT_LOWER:
-            if d[j] < 0.0:
-                total -= d[j]
-        elif st == _AT_UPPER:
-            if d[j] > 0.0:
-                total += d[j]
-        elif st == _FREE:
-            total += abs(d[j])
+        total += _dual_infeasibility(d[j], status[j])
     return total
 
 
 @numba.njit(**_JIT)
-def pivot_row(ptr, idx, val, rho, status, n, out):
+def pivot_row(ptr, idx, val, rho, status, n, out, nz):
     """The pivot row alpha_r = Af^T rho = [A^T rho, -rho] into ``out`` (length
-    n + m), zero at basic variables. (ptr, idx, val) is A^T as CSR (A's columns
-    as rows); each entry sums in storage order, as scipy's CSR product does,
-    and basic columns are skipped instead of computed and then cleared."""
+    n + m), zero at basic variables, and the positions of its nonzeros in
+    increasing order into ``nz``; returns their count. (ptr, idx, val) is A^T
+    as CSR (A's columns as rows); each entry sums in storage order, as
+    scipy's CSR product does, and basic columns are skipped instead of
+    computed and then cleared."""
+    k = 0
     for j in range(n):
         if status[j] == 0:
             out[j] = 0.0
@@ -200,45 +213,42 @@ def pivot_row(ptr, idx, val, rho, status, n, out):
         for p in range(_u(ptr[j]), _u(ptr[j + 1])):
             acc += val[p] * rho[_u(idx[p])]
         out[j] = acc
+        if acc != 0.0:
+            nz[k] = j
+            k += 1
     for i in range(rho.size):
-        out[n + i] = 0.0 if status[n + i] == 0 else -rho[i]
+        if status[n + i] == 0:
+            out[n + i] = 0.0
+        else:
+            v = -rho[i]
+            out[n + i] = v
+            if v != 0.0:
+                nz[k] = n + i
+                k += 1
+    return k
 
 
 @numba.njit(**_JIT)
-def dual_update_sums(d, y, alpha_r, rho, step, status, cost, cost_true, x):
-    """The dual update of a dual pivot (d += step * alpha_r, y -= step * rho;
-    nothing when step is 0) and, in the same pass over the variables, what the
-    pivot log and the progress test need afterwards: the dual infeasibility
-    sum (as dual_infeasibility_sum, with the statuses after the pivot),
-    cost @ x and cost_true @ x. Returns (dual infeasibility, cost @ x,
-    cost_true @ x)."""
+def dual_update(d, y, alpha_r, nz, count, rho, step, status):
+    """The dual update of a dual pivot over the pivot row's nonzeros nz[:count]:
+    d += step * alpha_r, y -= step * rho (nothing moves when step is 0).
+    Returns the dual infeasibility of those columns afterwards, with
+    ``status`` (the statuses after the pivot): with dual_ratio_test's figure
+    from before, the pivot log's dual infeasibility is kept up to date
+    without a pass over every variable."""
     total = 0.0
-    obj = 0.0
-    obj_true = 0.0
     move = step != 0.0
-    for j in range(d.size):
+    for e in range(count):
+        j = _u(nz[e])
         dj = d[j]
         if move:
-            a = alpha_r[j]
-            if a != 0.0:
-                dj += step * a
-                d[j] = dj
-        st = status[j]
-        if st == _AT_LOWER:
-            if dj < 0.0:
-                total -= dj
-        elif st == _AT_UPPER:
-            if dj > 0.0:
-                total += dj
-        elif st == _FREE:
-            total += abs(dj)
-        xj = x[j]
-        obj += cost[j] * xj
-        obj_true += cost_true[j] * xj
+            dj += step * alpha_r[j]
+            d[j] = dj
+        total += _dual_infeasibility(dj, status[j])
     if move:
         for i in range(y.size):
             y[i] -= step * rho[i]
-    return total, obj, obj_true
+    return total
 
 
 @numba.njit(**_JIT)
@@ -568,15 +578,15 @@ def warm_up() -> None:
     st = np.array([1, 2, 4, 0], dtype=np.int8)
     v = np.array([1.0, -1.0, 0.5, 0.0])
     idx = np.arange(4, dtype=np.int64)
-    dual_ratio_test(st, v, v.copy(), -np.ones(4), np.ones(4), 1.0, 1e-9, 1e-7, 1e-7, 1.0, True, False)
+    dual_ratio_test(st, v, idx, 4, v.copy(), -np.ones(4), np.ones(4), 1.0, 1e-9, 1e-7, 1e-7, 1.0, True, False)
     out = np.zeros(4)
     primal_infeasibilities(v, idx, -np.ones(4), np.ones(4), out)
     choose_row(v, np.ones(4), idx, 1e-7, RULE_STEEPEST_EDGE)
     dual_infeasibility_sum(v, st)
-    dual_update_sums(v.copy(), v.copy(), v, v, 0.5, st, v, v, v)
+    dual_update(v.copy(), v.copy(), v, idx, 4, v, 0.5, st)
     pivot_row(np.array([0, 1, 2], dtype=np.int32), np.array([0, 1], dtype=np.int32), np.ones(2), v[:2], st, 2,
-              np.zeros(4))  # fmt: skip
-    pivot_row(idx[:3], idx[:2], np.ones(2), v[:2], st, 2, np.zeros(4))
+              np.zeros(4), idx.copy())  # fmt: skip
+    pivot_row(idx[:3], idx[:2], np.ones(2), v[:2], st, 2, np.zeros(4), idx.copy())
     eta_append(v, 0, np.zeros(4, dtype=np.int64), np.zeros(4), 0)
     dual_primal_step(v.copy(), idx, v, np.zeros(0), 0, 0.0, 1.0)
     update_dse(np.ones(4), v, v, 1.0, 0)

@@ -155,7 +155,8 @@ class Simplex:
             self.A = scale_matrix(lp.A, self.sc) if options.scale else sp.csc_matrix(lp.A)
         R, S = self.sc.row, self.sc.col
         self.AT = sp.csr_matrix(self.A.T)  # row-wise copy for pivot rows
-        self._alpha_r = np.empty(n + m)  # the pivot row, see pivot_row
+        self._alpha_r = np.empty(n + m)  # the pivot row and its nonzeros, see pivot_row
+        self._row_nz = np.empty(n + m, dtype=np.int64)
         self.cost_true = np.concatenate([lp.sense * lp.c * S, np.zeros(m)])
         self.cost = self.cost_true.copy()
         self.lower = np.concatenate([lp.col_lower / S, lp.row_lower * R])
@@ -297,11 +298,14 @@ class Simplex:
         """alpha_r = Af^T rho for all N variables."""
         return np.concatenate([self.AT @ rho, -rho])
 
-    def pivot_row(self, rho: np.ndarray) -> np.ndarray:
-        """alpha_r = Af^T rho with zeros at the basic variables (kernels.pivot_row),
-        written into one buffer that every pivot reuses."""
-        kernels.pivot_row(self.AT.indptr, self.AT.indices, self.AT.data, rho, self.status, self.n, self._alpha_r)
-        return self._alpha_r
+    def pivot_row(self, rho: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """alpha_r = Af^T rho with zeros at the basic variables and the positions
+        of its nonzeros, increasing (kernels.pivot_row); both are buffers that
+        every pivot reuses."""
+        count = kernels.pivot_row(
+            self.AT.indptr, self.AT.indices, self.AT.data, rho, self.status, self.n, self._alpha_r, self._row_nz
+        )
+        return self._alpha_r, self._row_nz[:count]
 
     def times_af(self, v: np.ndarray) -> np.ndarray:
         """Af @ v."""
@@ -493,10 +497,12 @@ class Simplex:
         rule = _ROW_RULES[self.rule_override or self.opt.dual_pricing]
         return int(kernels.choose_row(infeas, self.dse, self.basic_idx, self.opt.primal_tol, rule))
 
-    def _dual_ratio_test(self, r: int, alpha_r: np.ndarray, delta: float):
-        """Harris two-pass ratio test with bound flipping (kernels.dual_ratio_test).
+    def _dual_ratio_test(self, r: int, alpha_r: np.ndarray, nz: np.ndarray, delta: float):
+        """Harris two-pass ratio test with bound flipping (kernels.dual_ratio_test)
+        over the pivot row's nonzeros ``nz``.
 
-        Returns (q, t, flips) with q = -1 when no column can enter.
+        Returns (q, t, flips, dinf) with q = -1 when no column can enter and
+        dinf the dual infeasibility of the nz columns before the pivot.
         The step t keeps every reduced cost dual feasible (within tolerance):
         among the columns whose pivot-row entry can restore row r, the
         breakpoints d_j / |alpha_rj| are passed in increasing order, boxed
@@ -505,11 +511,11 @@ class Simplex:
         """
         s = 1.0 if delta < 0 else -1.0
         bland = (self.rule_override or self.opt.dual_pricing) == "smallest_index"
-        q, t, flips = kernels.dual_ratio_test(
-            self.status, alpha_r, self.d, self.lower, self.upper, s,
+        q, t, flips, dinf = kernels.dual_ratio_test(
+            self.status, alpha_r, nz, nz.size, self.d, self.lower, self.upper, s,
             self.opt.pivot_tol, self.opt.dual_tol, self.opt.primal_tol, abs(delta), not bland, bland,
         )  # fmt: skip
-        return int(q), float(t), flips
+        return int(q), float(t), flips, dinf
 
     def _flip_column(self, flip_idx: np.ndarray) -> np.ndarray:
         """Af @ dx for the bound flips (to be FTRAN'd with the entering column)."""
@@ -542,11 +548,14 @@ class Simplex:
         trouble = 0
         self.rule_override = None
         infeas = self.primal_infeasibilities()
+        dinf = None  # the dual infeasibility sum, kept up to date by each pivot; None: recompute
         while True:
             self.check_limits()
             r = self._choose_row(infeas)
             if r < 0:
                 return "optimal"
+            if dinf is None:
+                dinf = kernels.dual_infeasibility_sum(self.d, self.status)
             delta = float(infeas[r])
             p = int(self.basic_idx[r])
             e = np.zeros(self.m)
@@ -554,14 +563,15 @@ class Simplex:
             rho = self.factor.btran(e)
             if dse:
                 self.dse[r] = max(float(rho @ rho), 1e-12)
-            alpha_r = self.pivot_row(rho)
-            q, t, flip_idx = self._dual_ratio_test(r, alpha_r, delta)
+            alpha_r, nz = self.pivot_row(rho)
+            q, t, flip_idx, dinf_row = self._dual_ratio_test(r, alpha_r, nz, delta)
             if q < 0:
                 if self.factor.updates > 0:
                     self.refactor("confirm_infeasibility")
                     infeas = self.primal_infeasibilities()
+                    dinf = None
                     continue
-                if self._tiny_entries_could_repair(alpha_r, np.flatnonzero(alpha_r), delta):
+                if self._tiny_entries_could_repair(alpha_r, nz, delta):
                     raise NumericalTrouble(
                         "unproven_infeasibility",
                         "only pivot-row entries below the pivot tolerance could repair the row",
@@ -583,6 +593,7 @@ class Simplex:
                     raise NumericalTrouble("unstable_pivot", f"pivot {piv:.3e} vs row entry {alpha_r[q]:.3e}")
                 self.refactor("pivot_mismatch")
                 infeas = self.primal_infeasibilities()
+                dinf = None
                 continue
             trouble = 0
             s = 1.0 if delta < 0 else -1.0
@@ -604,17 +615,20 @@ class Simplex:
             refactored = self.basis_change(r, q, alpha_q, leave_status)
             self.x[p] = bound
             if refactored:  # x, y and d were recomputed from the new factorization
-                dinf = objective = None
-                obj = float(self.cost @ self.x)
+                dinf = kernels.dual_infeasibility_sum(self.d, self.status)
             else:
-                # dual update d_j += s * t * alpha_rj (zero at the old basics), the leaving
-                # variable's reduced cost s * t, the entering one's 0; the pivot log's sums
-                # come from the same pass (the update does not depend on the statuses)
+                # dual update d_j += s * t * alpha_rj over the row's nonzeros (none at the old
+                # basics), done after the statuses changed (it does not depend on them) so that
+                # it also gives the new dual infeasibility of those columns; the leaving
+                # variable's reduced cost is s * t, the entering one's 0. The running sum
+                # changes only there: the row's columns (flips and q among them) and p.
                 self.d[p] = s * t
-                dinf, obj, objective = kernels.dual_update_sums(
-                    self.d, self.y, alpha_r, rho, s * t, self.status, self.cost, self.cost_true, self.x
-                )
+                dinf_row_after = kernels.dual_update(self.d, self.y, alpha_r, nz, nz.size, rho, s * t, self.status)
                 self.d[q] = 0.0
+                dinf_p = max(-self.d[p] * _DUAL_SIGN[self.status[p]], 0.0)  # p leaves to a bound, never free
+                dinf = max(0.0, dinf - dinf_row + dinf_row_after + float(dinf_p))
+            objective = float(self.cost_true @ self.x)
+            obj = float(self.cost @ self.x) if self.cost_shifted else objective
             infeas, pinf = self._primal_infeasibilities_and_sum()
             self.log("dual", p, "lower" if delta < 0 else "upper", q, piv, theta_p, flip_idx.size,
                      pinf, dinf, objective)  # fmt: skip
@@ -633,6 +647,7 @@ class Simplex:
                     since_progress = 0
                     if stalls == 1:
                         self.perturb_costs()
+                        dinf = None
                         best_obj = -np.inf  # the objective is measured with new costs now
                     elif stalls == 2:
                         self.rule_override = "smallest_index"
@@ -761,7 +776,7 @@ class Simplex:
             e = np.zeros(self.m)
             e[r] = 1.0
             rho = self.factor.btran(e)
-            alpha_r = self.pivot_row(rho)  # zero at the basics (q is not one yet)
+            alpha_r, nz = self.pivot_row(rho)  # zero at the basics (q is not one yet)
             if abs(piv) < self.opt.pivot_tol or abs(piv - alpha_r[q]) > 1e-6 * (1.0 + abs(piv)):
                 trouble += 1
                 if trouble > 3:
@@ -776,7 +791,6 @@ class Simplex:
             bound = self.lower[p] if leave_status == AT_LOWER else self.upper[p]
             # dual update along the pivot row
             dq = self.d[q]
-            nz = np.flatnonzero(alpha_r)
             self.d[nz] -= (dq / piv) * alpha_r[nz]
             self.y += (dq / piv) * rho
             self.d[p] = -dq / piv
