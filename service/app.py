@@ -15,7 +15,7 @@ from typing import Any
 
 from flask import Flask, Response, g, request
 
-from service import metrics
+from service import metrics, plan_json
 from service.api import register_blueprints
 from service.api.auth import KeyRing, keys_from_env
 from service.api.errors import register_error_handlers
@@ -89,9 +89,10 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     register_blueprints(app)
     _register_request_hooks(app)
     metrics.init_app(app)
-    # compile (first process on the machine) or load the engine's compiled loops
-    # now, so no request pays for it
+    # compile (first process on the machine) or load the engine's and the plan
+    # encoder's compiled loops now, so no request pays for it
     kernels.warm_up()
+    plan_json.warm_up()
     _tune_gc()
     return app
 

@@ -18,6 +18,7 @@ import orjson
 from service.lp.basis import STATUS_NAMES, Basis, Status
 from service.lp.model import LinearProgram
 from service.lp.result import SolveResult
+from service.plan_json import plan_object
 from service.store import Solution, VersionRecord
 
 SECTIONS = ("solution", "solve", "pivot_log", "changes")
@@ -25,7 +26,7 @@ SOLUTION_VIEWS = ("full", "nonzero", "moved", "none")
 ZERO = 1e-12  # values closer to zero than this are written as 0 (no -0.0 or 1e-17 noise in plans)
 MOVE_TOL = 1e-9  # relative change that counts as "moved"
 STORED_MOVES = 1000  # moved variables kept in a stored change report
-_STATUS_LOOKUP = np.array([STATUS_NAMES[s] for s in Status], dtype=object)
+_STATUS_WORDS = [STATUS_NAMES[s] for s in Status]  # by status code
 
 
 def dumps(obj: Any) -> bytes:
@@ -194,7 +195,10 @@ def moved_indices(new: np.ndarray | None, old: np.ndarray | None) -> np.ndarray:
 def solution_json(
     lp: LinearProgram, sol: Solution, basis: Basis | None, view: str, record: VersionRecord | None = None
 ) -> dict[str, Any] | None:
-    """The plan by name: value, reduced cost, basis status per variable; activity, shadow price per row."""
+    """The plan by name: value, reduced cost, basis status per variable; activity, shadow price per row.
+
+    The two maps come as ``orjson.Fragment`` (encoded JSON objects, see plan_json.py): encode the
+    result with orjson; clients read ordinary JSON objects."""
     if view == "none" or sol.x is None:
         return None
     n, m = lp.n, lp.m
@@ -212,22 +216,26 @@ def solution_json(
             keep |= basis.row_status != Status.BASIC
         rows = np.flatnonzero(keep)
 
-    def pick(arr: np.ndarray | None, idx: np.ndarray) -> list:
-        return [None] * idx.size if arr is None else _clean(arr[idx])
+    def pick(arr: np.ndarray | None, idx: np.ndarray) -> np.ndarray | None:
+        if arr is None:
+            return None
+        v = arr[idx]
+        return np.where(np.abs(v) < ZERO, 0.0, v) + 0.0  # as _clean; non-finite values are written as null
 
-    col_status = _STATUS_LOOKUP[basis.col_status[cols]].tolist() if basis is not None else [None] * cols.size
-    row_status = _STATUS_LOOKUP[basis.row_status[rows]].tolist() if basis is not None else [None] * rows.size
-    # the whole plan names every entry in order: zip the name lists themselves (no index lookups)
+    if basis is not None:
+        col_codes, row_codes, words = basis.col_status[cols], basis.row_status[rows], _STATUS_WORDS
+    else:
+        col_codes, row_codes, words = np.zeros(cols.size, np.int64), np.zeros(rows.size, np.int64), [None]
+    # the whole plan names every entry in order: the name lists themselves (no index lookups)
     col_names = lp.col_names if view == "full" else [lp.col_names[j] for j in cols.tolist()]
     row_names = lp.row_names if view == "full" else [lp.row_names[i] for i in rows.tolist()]
-    variables = {
-        name: {"value": v, "reduced_cost": d, "basis": s}
-        for name, v, d, s in zip(col_names, pick(sol.x, cols), pick(sol.reduced_cost, cols), col_status)
-    }
-    constraints = {
-        name: {"activity": a, "shadow_price": y, "basis": s}
-        for name, a, y, s in zip(row_names, pick(sol.row_activity, rows), pick(sol.shadow_price, rows), row_status)
-    }
+    variables = plan_object(
+        col_names, ("value", "reduced_cost", "basis"), pick(sol.x, cols), pick(sol.reduced_cost, cols), col_codes, words
+    )
+    constraints = plan_object(
+        row_names, ("activity", "shadow_price", "basis"),
+        pick(sol.row_activity, rows), pick(sol.shadow_price, rows), row_codes, words,
+    )  # fmt: skip
     return {"variables": variables, "constraints": constraints}
 
 
