@@ -53,22 +53,23 @@ def _dual_infeasibility(dj, st):
 
 @numba.njit(**_JIT)
 def dual_ratio_test(
-    status, alpha_r, nz, count, d, lower, upper, s, pivot_tol, dual_tol, primal_tol, slope, can_flip, bland
+    status, vals, nz, count, d, lower, upper, s, pivot_tol, dual_tol, primal_tol, slope, can_flip, bland
 ):
     """Harris two-pass ratio test with bound flipping over one pivot row.
 
-    Only the row's nonzeros at nonbasic columns, nz[:count] in increasing
-    order (from pivot_row), are looked at. Candidates: nonbasic columns whose
+    The row comes as its nonzeros at nonbasic columns (from pivot_row):
+    column nz[e] has entry vals[e], e < count, columns increasing. Candidates: nonbasic columns whose
     pivot-row entry (times s) moves the leaving row toward feasibility,
     |entry| > pivot_tol. Rounds take, among the candidates left, the group
     whose ratio is within the smallest Harris bound; a group is flipped when
     the slope left pays for it (by more than primal_tol), otherwise the
     group's largest |entry| enters (Bland: the smallest index). Returns
-    (q, t, flips, dinf) with q = -1 when nothing can enter; dinf is the dual
-    infeasibility of the nz columns before the pivot (for the pivot log's
-    running sum, see dual_update).
+    (q, t, flips, dinf, entry) with q = -1 when nothing can enter; dinf is
+    the dual infeasibility of the nz columns before the pivot (for the pivot
+    log's running sum, see dual_update), entry is q's pivot-row entry.
     """
     cand = np.empty(count, np.int64)
+    where = np.empty(count, np.int64)
     a_abs = np.empty(count)
     ratio = np.empty(count)
     harris = np.empty(count)
@@ -78,7 +79,7 @@ def dual_ratio_test(
     for e in range(count):
         j = _u(nz[e])
         st = status[j]
-        a = alpha_r[j]
+        a = vals[e]
         dinf += _dual_infeasibility(d[j], st)
         if st == _AT_LOWER:
             ok = (a < -pivot_tol) if s > 0 else (a > pivot_tol)
@@ -98,6 +99,7 @@ def dual_ratio_test(
             dt = -d[j] if st == _AT_UPPER else d[j]
             reach[k] = (upper[j] - lower[j]) * aa
         cand[k] = j
+        where[k] = e
         a_abs[k] = aa
         ratio[k] = dt / aa
         harris[k] = (dt + dual_tol) / aa
@@ -105,7 +107,7 @@ def dual_ratio_test(
     flips = np.empty(k, np.int64)
     nflips = 0
     if k == 0:
-        return -1, 0.0, flips[:0], dinf
+        return -1, 0.0, flips[:0], dinf, 0.0
     alive = np.ones(k, np.bool_)
     left = k
     while left > 0:
@@ -139,9 +141,9 @@ def dual_ratio_test(
         t = ratio[best]
         if t < 0.0:
             t = 0.0
-        return cand[best], t, flips[:nflips], dinf
+        return cand[best], t, flips[:nflips], dinf, vals[where[best]]
     # every candidate could be flipped with slope to spare: dual unbounded
-    return -1, 0.0, flips[:0], dinf
+    return -1, 0.0, flips[:0], dinf, 0.0
 
 
 @numba.njit(**_JIT)
@@ -197,52 +199,47 @@ def dual_infeasibility_sum(d, status):
 
 
 @numba.njit(**_JIT)
-def pivot_row(ptr, idx, val, rho, status, n, out, nz):
-    """The pivot row alpha_r = Af^T rho = [A^T rho, -rho] into ``out`` (length
-    n + m), zero at basic variables, and the positions of its nonzeros in
-    increasing order into ``nz``; returns their count. (ptr, idx, val) is A^T
-    as CSR (A's columns as rows); each entry sums in storage order, as
-    scipy's CSR product does, and basic columns are skipped instead of
-    computed and then cleared."""
+def pivot_row(ptr, idx, val, rho, status, n, nz, vals):
+    """The pivot row alpha_r = Af^T rho = [A^T rho, -rho] at the nonbasic
+    variables, as its nonzeros: column nz[e] has entry vals[e], columns
+    increasing; returns their count. (ptr, idx, val) is A^T as CSR (A's
+    columns as rows); each entry sums in storage order, as scipy's CSR
+    product does. Basic columns (alpha_r = 0 there) are skipped."""
     k = 0
     for j in range(n):
         if status[j] == 0:
-            out[j] = 0.0
             continue
         acc = 0.0
         for p in range(_u(ptr[j]), _u(ptr[j + 1])):
             acc += val[p] * rho[_u(idx[p])]
-        out[j] = acc
         if acc != 0.0:
             nz[k] = j
+            vals[k] = acc
             k += 1
     for i in range(rho.size):
-        if status[n + i] == 0:
-            out[n + i] = 0.0
-        else:
-            v = -rho[i]
-            out[n + i] = v
-            if v != 0.0:
-                nz[k] = n + i
-                k += 1
+        if status[n + i] != 0 and rho[i] != 0.0:
+            nz[k] = n + i
+            vals[k] = -rho[i]
+            k += 1
     return k
 
 
 @numba.njit(**_JIT)
-def dual_update(d, y, alpha_r, nz, count, rho, step, status):
-    """The dual update of a dual pivot over the pivot row's nonzeros nz[:count]:
-    d += step * alpha_r, y -= step * rho (nothing moves when step is 0).
-    Returns the dual infeasibility of those columns afterwards, with
-    ``status`` (the statuses after the pivot): with dual_ratio_test's figure
-    from before, the pivot log's dual infeasibility is kept up to date
-    without a pass over every variable."""
+def dual_update(d, y, vals, nz, count, rho, step, status):
+    """The dual update of a dual pivot over the pivot row's nonzeros
+    (column nz[e] has entry vals[e], e < count): d += step * alpha_r,
+    y -= step * rho (nothing moves when step is 0). Returns the dual
+    infeasibility of those columns afterwards, with ``status`` (the statuses
+    after the pivot): with dual_ratio_test's figure from before, the pivot
+    log's dual infeasibility is kept up to date without a pass over every
+    variable."""
     total = 0.0
     move = step != 0.0
     for e in range(count):
         j = _u(nz[e])
         dj = d[j]
         if move:
-            dj += step * alpha_r[j]
+            dj += step * vals[e]
             d[j] = dj
         total += _dual_infeasibility(dj, status[j])
     if move:
@@ -578,15 +575,17 @@ def warm_up() -> None:
     st = np.array([1, 2, 4, 0], dtype=np.int8)
     v = np.array([1.0, -1.0, 0.5, 0.0])
     idx = np.arange(4, dtype=np.int64)
-    dual_ratio_test(st, v, idx, 4, v.copy(), -np.ones(4), np.ones(4), 1.0, 1e-9, 1e-7, 1e-7, 1.0, True, False)
+    dual_ratio_test(st, v, idx.astype(np.int32), 4, v.copy(), -np.ones(4), np.ones(4), 1.0, 1e-9, 1e-7, 1e-7, 1.0,
+                    True, False)  # fmt: skip
     out = np.zeros(4)
     primal_infeasibilities(v, idx, -np.ones(4), np.ones(4), out)
     choose_row(v, np.ones(4), idx, 1e-7, RULE_STEEPEST_EDGE)
     dual_infeasibility_sum(v, st)
-    dual_update(v.copy(), v.copy(), v, idx, 4, v, 0.5, st)
+    nz = idx.astype(np.int32)
+    dual_update(v.copy(), v.copy(), v, nz, 4, v, 0.5, st)
     pivot_row(np.array([0, 1, 2], dtype=np.int32), np.array([0, 1], dtype=np.int32), np.ones(2), v[:2], st, 2,
-              np.zeros(4), idx.copy())  # fmt: skip
-    pivot_row(idx[:3], idx[:2], np.ones(2), v[:2], st, 2, np.zeros(4), idx.copy())
+              nz.copy(), np.zeros(4))  # fmt: skip
+    pivot_row(idx[:3], idx[:2], np.ones(2), v[:2], st, 2, nz.copy(), np.zeros(4))
     eta_append(v, 0, np.zeros(4, dtype=np.int64), np.zeros(4), 0)
     dual_primal_step(v.copy(), idx, v, np.zeros(0), 0, 0.0, 1.0)
     update_dse(np.ones(4), v, v, 1.0, 0)

@@ -155,8 +155,8 @@ class Simplex:
             self.A = scale_matrix(lp.A, self.sc) if options.scale else sp.csc_matrix(lp.A)
         R, S = self.sc.row, self.sc.col
         self.AT = sp.csr_matrix(self.A.T)  # row-wise copy for pivot rows
-        self._alpha_r = np.empty(n + m)  # the pivot row and its nonzeros, see pivot_row
-        self._row_nz = np.empty(n + m, dtype=np.int64)
+        self._row_nz = np.empty(n + m, dtype=np.int32)  # the pivot row's nonzeros, see pivot_row
+        self._row_vals = np.empty(n + m)
         self.cost_true = np.concatenate([lp.sense * lp.c * S, np.zeros(m)])
         self.cost = self.cost_true.copy()
         self.lower = np.concatenate([lp.col_lower / S, lp.row_lower * R])
@@ -299,13 +299,19 @@ class Simplex:
         return np.concatenate([self.AT @ rho, -rho])
 
     def pivot_row(self, rho: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """alpha_r = Af^T rho with zeros at the basic variables and the positions
-        of its nonzeros, increasing (kernels.pivot_row); both are buffers that
+        """alpha_r = Af^T rho at the nonbasic variables, as its nonzeros: positions
+        (increasing) and entries (kernels.pivot_row); views of buffers that
         every pivot reuses."""
         count = kernels.pivot_row(
-            self.AT.indptr, self.AT.indices, self.AT.data, rho, self.status, self.n, self._alpha_r, self._row_nz
+            self.AT.indptr, self.AT.indices, self.AT.data, rho, self.status, self.n, self._row_nz, self._row_vals
         )
-        return self._alpha_r, self._row_nz[:count]
+        return self._row_nz[:count], self._row_vals[:count]
+
+    @staticmethod
+    def row_entry(nz: np.ndarray, vals: np.ndarray, j: int) -> float:
+        """Entry j of a pivot row given as (nz, vals)."""
+        e = int(np.searchsorted(nz, j))
+        return float(vals[e]) if e < nz.size and nz[e] == j else 0.0
 
     def times_af(self, v: np.ndarray) -> np.ndarray:
         """Af @ v."""
@@ -497,12 +503,13 @@ class Simplex:
         rule = _ROW_RULES[self.rule_override or self.opt.dual_pricing]
         return int(kernels.choose_row(infeas, self.dse, self.basic_idx, self.opt.primal_tol, rule))
 
-    def _dual_ratio_test(self, r: int, alpha_r: np.ndarray, nz: np.ndarray, delta: float):
+    def _dual_ratio_test(self, r: int, nz: np.ndarray, vals: np.ndarray, delta: float):
         """Harris two-pass ratio test with bound flipping (kernels.dual_ratio_test)
-        over the pivot row's nonzeros ``nz``.
+        over the pivot row's nonzeros (positions nz, entries vals).
 
-        Returns (q, t, flips, dinf) with q = -1 when no column can enter and
-        dinf the dual infeasibility of the nz columns before the pivot.
+        Returns (q, t, flips, dinf, alpha_rq) with q = -1 when no column can
+        enter, dinf the dual infeasibility of the nz columns before the pivot
+        and alpha_rq the entering column's pivot-row entry.
         The step t keeps every reduced cost dual feasible (within tolerance):
         among the columns whose pivot-row entry can restore row r, the
         breakpoints d_j / |alpha_rj| are passed in increasing order, boxed
@@ -511,11 +518,11 @@ class Simplex:
         """
         s = 1.0 if delta < 0 else -1.0
         bland = (self.rule_override or self.opt.dual_pricing) == "smallest_index"
-        q, t, flips, dinf = kernels.dual_ratio_test(
-            self.status, alpha_r, nz, nz.size, self.d, self.lower, self.upper, s,
+        q, t, flips, dinf, alpha_rq = kernels.dual_ratio_test(
+            self.status, vals, nz, nz.size, self.d, self.lower, self.upper, s,
             self.opt.pivot_tol, self.opt.dual_tol, self.opt.primal_tol, abs(delta), not bland, bland,
         )  # fmt: skip
-        return int(q), float(t), flips, dinf
+        return int(q), float(t), flips, dinf, float(alpha_rq)
 
     def _flip_column(self, flip_idx: np.ndarray) -> np.ndarray:
         """Af @ dx for the bound flips (to be FTRAN'd with the entering column)."""
@@ -563,15 +570,15 @@ class Simplex:
             rho = self.factor.btran(e)
             if dse:
                 self.dse[r] = max(float(rho @ rho), 1e-12)
-            alpha_r, nz = self.pivot_row(rho)
-            q, t, flip_idx, dinf_row = self._dual_ratio_test(r, alpha_r, nz, delta)
+            nz, vals = self.pivot_row(rho)
+            q, t, flip_idx, dinf_row, alpha_rq = self._dual_ratio_test(r, nz, vals, delta)
             if q < 0:
                 if self.factor.updates > 0:
                     self.refactor("confirm_infeasibility")
                     infeas = self.primal_infeasibilities()
                     dinf = None
                     continue
-                if self._tiny_entries_could_repair(alpha_r, nz, delta):
+                if self._tiny_entries_could_repair(nz, vals, delta):
                     raise NumericalTrouble(
                         "unproven_infeasibility",
                         "only pivot-row entries below the pivot tolerance could repair the row",
@@ -587,10 +594,10 @@ class Simplex:
             sol = self.factor.ftran_many(np.column_stack(cols))
             alpha_q = np.ascontiguousarray(sol[:, 0])
             piv = alpha_q[r]
-            if abs(piv) < ptol or abs(piv - alpha_r[q]) > 1e-6 * (1.0 + abs(piv)):
+            if abs(piv) < ptol or abs(piv - alpha_rq) > 1e-6 * (1.0 + abs(piv)):
                 trouble += 1
                 if trouble > 3:
-                    raise NumericalTrouble("unstable_pivot", f"pivot {piv:.3e} vs row entry {alpha_r[q]:.3e}")
+                    raise NumericalTrouble("unstable_pivot", f"pivot {piv:.3e} vs row entry {alpha_rq:.3e}")
                 self.refactor("pivot_mismatch")
                 infeas = self.primal_infeasibilities()
                 dinf = None
@@ -623,7 +630,7 @@ class Simplex:
                 # variable's reduced cost is s * t, the entering one's 0. The running sum
                 # changes only there: the row's columns (flips and q among them) and p.
                 self.d[p] = s * t
-                dinf_row_after = kernels.dual_update(self.d, self.y, alpha_r, nz, nz.size, rho, s * t, self.status)
+                dinf_row_after = kernels.dual_update(self.d, self.y, vals, nz, nz.size, rho, s * t, self.status)
                 self.d[q] = 0.0
                 dinf_p = max(-self.d[p] * _DUAL_SIGN[self.status[p]], 0.0)  # p leaves to a bound, never free
                 dinf = max(0.0, dinf - dinf_row + dinf_row_after + float(dinf_p))
@@ -659,13 +666,13 @@ class Simplex:
                             "stalled", "dual simplex made no progress after perturbing and Bland's rule"
                         )
 
-    def _tiny_entries_could_repair(self, alpha_r: np.ndarray, nz: np.ndarray, delta: float) -> bool:
+    def _tiny_entries_could_repair(self, nz: np.ndarray, vals: np.ndarray, delta: float) -> bool:
         """Entries below the pivot tolerance are skipped by the ratio test; if one
         of them moves toward an infinite bound, the row might be repairable by an
         unbounded move and the "infeasible" verdict is not proven."""
         s = 1.0 if delta < 0 else -1.0
         st = self.status[nz]
-        at = s * alpha_r[nz]
+        at = s * vals
         mag = np.abs(at)
         # below the pivot tolerance but above rounding noise (common practice: ~1e-12)
         tiny = (mag <= self.opt.pivot_tol) & (mag > 1e-12 * max(1.0, mag.max(initial=0.0)))
@@ -776,11 +783,12 @@ class Simplex:
             e = np.zeros(self.m)
             e[r] = 1.0
             rho = self.factor.btran(e)
-            alpha_r, nz = self.pivot_row(rho)  # zero at the basics (q is not one yet)
-            if abs(piv) < self.opt.pivot_tol or abs(piv - alpha_r[q]) > 1e-6 * (1.0 + abs(piv)):
+            nz, vals = self.pivot_row(rho)  # the nonbasic columns' entries (q is not basic yet)
+            alpha_rq = self.row_entry(nz, vals, q)
+            if abs(piv) < self.opt.pivot_tol or abs(piv - alpha_rq) > 1e-6 * (1.0 + abs(piv)):
                 trouble += 1
                 if trouble > 3:
-                    raise NumericalTrouble("unstable_pivot", f"pivot {piv:.3e} vs row entry {alpha_r[q]:.3e}")
+                    raise NumericalTrouble("unstable_pivot", f"pivot {piv:.3e} vs row entry {alpha_rq:.3e}")
                 self.refactor("pivot_mismatch")
                 continue
             trouble = 0
@@ -791,14 +799,14 @@ class Simplex:
             bound = self.lower[p] if leave_status == AT_LOWER else self.upper[p]
             # dual update along the pivot row
             dq = self.d[q]
-            self.d[nz] -= (dq / piv) * alpha_r[nz]
+            self.d[nz] -= (dq / piv) * vals
             self.y += (dq / piv) * rho
             self.d[p] = -dq / piv
             self.d[q] = 0.0
             # devex reference weights (Harris 1973), simplified update
             if self.opt.primal_pricing == "devex":
                 wq = self.devex[q]
-                self.devex[nz] = np.maximum(self.devex[nz], (alpha_r[nz] / piv) ** 2 * wq)
+                self.devex[nz] = np.maximum(self.devex[nz], (vals / piv) ** 2 * wq)
                 self.devex[p] = max(wq / piv**2, 1.0)
             self.basis_change(r, q, alpha_q, leave_status)
             self.x[p] = bound
