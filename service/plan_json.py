@@ -22,6 +22,7 @@ import numpy as np
 import orjson
 
 _JIT = {"cache": True, "nogil": True}
+_u = np.uint64  # unsigned positions: no negative-index check per byte (see service/lp/kernels.py)
 _QUOTE, _BACKSLASH, _COMMA, _OPEN, _CLOSE = (ord(c) for c in '"\\,[]')
 
 
@@ -69,6 +70,15 @@ def _number_tokens(buf, count):
     return starts, ends
 
 
+@numba.njit(inline="always", **_JIT)
+def _put(out, p, src, start, end):
+    """Copy src[start:end] to out at p; return the position after it."""
+    for i in range(_u(start), _u(end)):
+        out[p] = src[i]
+        p += _u(1)
+    return p
+
+
 @numba.njit(**_JIT)
 def _assemble(names, ns, ne, a, as_, ae, b, bs, be, codes, words, ws, we, key_a, key_b, key_c):
     """{NAME:{KEY_A A,KEY_B B,KEY_C WORD},...} from the pieces (key_a holds
@@ -77,42 +87,27 @@ def _assemble(names, ns, ne, a, as_, ae, b, bs, be, codes, words, ws, we, key_a,
     total = 2 + (n - 1 if n > 0 else 0)
     fixed = key_a.size + key_b.size + key_c.size + 2  # the keys, ":" after the name, "}" after the entry
     for j in range(n):
-        c = codes[j]
+        c = _u(codes[j])
         total += (ne[j] - ns[j]) + (ae[j] - as_[j]) + (be[j] - bs[j]) + (we[c] - ws[c]) + fixed
     out = np.empty(total, np.uint8)
-    p = 0
-    out[p] = ord("{")
-    p += 1
+    out[0] = ord("{")
+    p = _u(1)
     for j in range(n):
         if j > 0:
             out[p] = _COMMA
-            p += 1
-        for i in range(ns[j], ne[j]):
-            out[p] = names[i]
-            p += 1
+            p += _u(1)
+        p = _put(out, p, names, ns[j], ne[j])
         out[p] = ord(":")
-        p += 1
-        for i in range(key_a.size):
-            out[p] = key_a[i]
-            p += 1
-        for i in range(as_[j], ae[j]):
-            out[p] = a[i]
-            p += 1
-        for i in range(key_b.size):
-            out[p] = key_b[i]
-            p += 1
-        for i in range(bs[j], be[j]):
-            out[p] = b[i]
-            p += 1
-        for i in range(key_c.size):
-            out[p] = key_c[i]
-            p += 1
-        c = codes[j]
-        for i in range(ws[c], we[c]):
-            out[p] = words[i]
-            p += 1
+        p += _u(1)
+        p = _put(out, p, key_a, 0, key_a.size)
+        p = _put(out, p, a, as_[j], ae[j])
+        p = _put(out, p, key_b, 0, key_b.size)
+        p = _put(out, p, b, bs[j], be[j])
+        p = _put(out, p, key_c, 0, key_c.size)
+        c = _u(codes[j])
+        p = _put(out, p, words, ws[c], we[c])
         out[p] = ord("}")
-        p += 1
+        p += _u(1)
     out[p] = ord("}")
     return out
 
