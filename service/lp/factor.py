@@ -64,6 +64,9 @@ class _EtaFile:
     def _solve_t(self, h: np.ndarray) -> np.ndarray:  # B0^-T h
         raise NotImplementedError
 
+    def _solve_pair(self, a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:  # B0^-1 a, B0^-1 b
+        raise NotImplementedError
+
     def _apply_etas(self, v: np.ndarray) -> None:
         if self._count:
             kernels.eta_ftran(v, self._rows, self._pivots, self._starts, self._idx, self._vals, self._count)
@@ -83,6 +86,16 @@ class _EtaFile:
         v = np.ascontiguousarray(v.reshape(-1, 1) if v.ndim == 1 else v)
         self._apply_etas(v)
         return v
+
+    def ftran_pair(self, a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """FTRAN of two columns (a dual pivot's entering column and its DSE
+        vector) in one pass over the LU, as two vectors."""
+        if self.m == 0:
+            return np.zeros(0), np.zeros(0)
+        va, vb = self._solve_pair(np.asarray(a, dtype=np.float64), np.asarray(b, dtype=np.float64))
+        self._apply_etas(va.reshape(-1, 1))
+        self._apply_etas(vb.reshape(-1, 1))
+        return va, vb
 
     def btran(self, h: np.ndarray) -> np.ndarray:
         if self.m == 0:
@@ -215,6 +228,11 @@ class Factor(_EtaFile):
             kernels.lu_solve_one(*lu, a[:, k - 1], v[:, k - 1])
         return v
 
+    def _solve_pair(self, a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        va, vb = np.empty(self.m), np.empty(self.m)
+        kernels.lu_solve_pair(*self._L, *self._U, self._Ud, self._src, self._dst, a, b, va, vb)
+        return va, vb
+
     def _solve_t(self, h: np.ndarray) -> np.ndarray:
         if h.ndim == 2:
             return np.column_stack([self._solve_t(np.ascontiguousarray(col)) for col in h.T])
@@ -246,6 +264,11 @@ class BorderedFactor(_EtaFile):
             return np.concatenate([v1, self.C @ v1 - a[m0:]])
         v1 = self.base.ftran_many(a[:m0])
         return np.vstack([v1, self.C @ v1 - a[m0:]])
+
+    def _solve_pair(self, a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        m0 = self.m0
+        va, vb = self.base.ftran_pair(a[:m0], b[:m0])
+        return np.concatenate([va, self.C @ va - a[m0:]]), np.concatenate([vb, self.C @ vb - b[m0:]])
 
     def _solve_t(self, h: np.ndarray) -> np.ndarray:
         m0 = self.m0

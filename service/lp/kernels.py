@@ -602,6 +602,7 @@ def warm_up() -> None:
     for a, b in ((two[:, 0], two[:, 1]), (np.ones(4), np.ones(4))):  # strided views and plain vectors
         lu_solve_pair(*lu, a, b, a, b)
         lu_solve_one(*lu, a, b)
+    lu_solve_pair(*lu, np.ones(4), np.ones(4)[::-1], np.ones(4), np.ones(4))  # a reversed view (A layout) too
     eta_btran(np.ones(4), idx[:1], np.ones(1), np.array([0, 1], dtype=np.int64), idx[1:2], v[:1], 1)
     for ints in (np.int32, np.int64):  # scipy keeps either index type
         bptr, bidx, bval = basis_csc(np.array([0, 1], dtype=ints), np.array([0], dtype=ints), np.ones(1), 1,

@@ -585,14 +585,20 @@ class Simplex:
                     )
                 self._record_farkas(rho, p, r, delta)
                 return "infeasible"
-            # one multi-column FTRAN: entering column, DSE's tau = B^-1 rho, flips
-            cols = [self.column(q)]
-            if dse:
-                cols.append(rho)
-            if flip_idx.size:
-                cols.append(self._flip_column(flip_idx))
-            sol = self.factor.ftran_many(np.column_stack(cols))
-            alpha_q = np.ascontiguousarray(sol[:, 0])
+            # one FTRAN pass for the entering column, DSE's tau = B^-1 rho and the flips' shift
+            tau = shift = None
+            if dse and not flip_idx.size:  # the usual case: two vectors
+                alpha_q, tau = self.factor.ftran_pair(self.column(q), rho)
+            else:
+                cols = [self.column(q)]
+                if dse:
+                    cols.append(rho)
+                if flip_idx.size:
+                    cols.append(self._flip_column(flip_idx))
+                sol = self.factor.ftran_many(np.column_stack(cols))
+                alpha_q = np.ascontiguousarray(sol[:, 0])
+                tau = np.ascontiguousarray(sol[:, 1]) if dse else None
+                shift = np.ascontiguousarray(sol[:, -1]) if flip_idx.size else None
             piv = alpha_q[r]
             if abs(piv) < ptol or abs(piv - alpha_rq) > 1e-6 * (1.0 + abs(piv)):
                 trouble += 1
@@ -608,16 +614,14 @@ class Simplex:
             bound = self.lower[p] if delta < 0 else self.upper[p]
             if flip_idx.size:
                 self._flip_status(flip_idx)
-                theta_p = kernels.dual_primal_step(
-                    self.x, self.basic_idx, alpha_q, np.ascontiguousarray(sol[:, -1]), r, bound, piv
-                )
-            else:
-                theta_p = kernels.dual_primal_step(self.x, self.basic_idx, alpha_q, _NO_SHIFT, r, bound, piv)
+            theta_p = kernels.dual_primal_step(
+                self.x, self.basic_idx, alpha_q, _NO_SHIFT if shift is None else shift, r, bound, piv
+            )
             self.x[q] += theta_p
             self.x[p] = bound
             # dual steepest edge weights (Forrest and Goldfarb 1992)
             if dse:
-                kernels.update_dse(self.dse, alpha_q, np.ascontiguousarray(sol[:, 1]), piv, r)
+                kernels.update_dse(self.dse, alpha_q, tau, piv, r)
             leave_status = AT_LOWER if delta < 0 else AT_UPPER
             refactored = self.basis_change(r, q, alpha_q, leave_status)
             self.x[p] = bound
