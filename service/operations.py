@@ -14,8 +14,6 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
-import numpy as np
-
 from service import lp as engine
 from service.cache import VersionCache
 from service.document import ChangeSet, apply_patch, name_index, to_document
@@ -24,7 +22,14 @@ from service.lp.model import LinearProgram
 from service.limits import LimitBook, Limits, check_model
 from service.lp.result import SolveOptions, SolveResult
 from service.metrics import observe_solve
-from service.serialize import change_report, moved_indices, result_record, solution_of, summary_record
+from service.serialize import (
+    change_report,
+    moved_either,
+    moved_indices,
+    result_record,
+    solution_of,
+    summary_record,
+)
 from service.store import (
     AlreadyApplied,
     Head,
@@ -355,10 +360,9 @@ class ModelService:
         if moved_from is None:
             report = None
             moved_cols = moved_indices(sol.x, None)
-            moved_rows = np.union1d(
-                moved_indices(sol.row_activity, None), moved_indices(sol.shadow_price, None)
+            moved_rows = moved_either(
+                moved_indices(sol.row_activity, None), moved_indices(sol.shadow_price, None), lp.m
             )
-            moved_rows = moved_rows.astype(np.int32)
         else:
             report, moved_cols, moved_rows = change_report(
                 moved_from, lp, sol, objective, changes.summary(), changes.col_source, changes.row_source

@@ -192,6 +192,14 @@ def moved_indices(new: np.ndarray | None, old: np.ndarray | None) -> np.ndarray:
     return np.flatnonzero(moved).astype(np.int32)
 
 
+def moved_either(first: np.ndarray, second: np.ndarray, size: int) -> np.ndarray:
+    """The sorted union of two position lists in range(size) (a mask, not np.union1d's sort)."""
+    mask = np.zeros(size, dtype=bool)
+    mask[first] = True
+    mask[second] = True
+    return np.flatnonzero(mask).astype(np.int32)
+
+
 def solution_json(
     lp: LinearProgram, sol: Solution, basis: Basis | None, view: str, record: VersionRecord | None = None
 ) -> dict[str, Any] | None:
@@ -324,10 +332,11 @@ def change_report(
 
     old_x = carried(old.x, col_src)
     moved_cols = moved_indices(after.x, old_x)
-    moved_rows = np.union1d(
+    moved_rows = moved_either(
         moved_indices(after.row_activity, carried(old.row_activity, row_src)),
         moved_indices(after.shadow_price, carried(old.shadow_price, row_src)),
-    ).astype(np.int32)
+        after_lp.m,
+    )
 
     variables: dict[str, dict[str, float | None]] = {}
     if after.x is not None:
