@@ -978,8 +978,9 @@ class Store:
                     f"{{hb:{model_id}}}:", record.lp.name, ",".join(send),
                     "" if created_at is None else repr(created_at)]  # fmt: skip
             with self.r.pipeline(transaction=True) as pipe:
-                for d in send:
-                    pipe.set(self._blob(model_id, d), blobs[d])
+                if send:  # one MSET (the model's keys share one cluster slot), not a SET per piece;
+                    # by execute_command, as cluster pipelines block .mset
+                    pipe.execute_command("MSET", *[x for d in send for x in (self._blob(model_id, d), blobs[d])])
                 pipe.hset(stage, mapping=fields)
                 # EVAL, not EVALSHA: a script missing from Redis's cache (after a restart) would fail
                 # inside the transaction after the writes before it; the 5 KB text is cheap to send
