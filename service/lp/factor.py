@@ -170,8 +170,9 @@ class Factor(_EtaFile):
         self._src[self.lu.perm_r] = row_perm
         self._dst = np.empty(self.m, dtype=np.int64)
         self._dst[self.lu.perm_c] = col_perm
-        self._L = (L.indptr.astype(np.int64), L.indices.astype(np.int64), L.data.astype(np.float64))
-        self._U = (U.indptr.astype(np.int64), U.indices.astype(np.int64), U.data.astype(np.float64))
+        # 32-bit positions (nnz(L + U) < 2^31): a third less to read per substitution than 64-bit
+        self._L = (L.indptr.astype(np.int32), L.indices.astype(np.int32), L.data.astype(np.float64))
+        self._U = (U.indptr.astype(np.int32), U.indices.astype(np.int32), U.data.astype(np.float64))
         self._Ud = np.ascontiguousarray(udiag, dtype=np.float64)
         self.lu = None  # everything needed is above; SuperLU's copy would double the memory
         self.seconds = time.perf_counter() - started  # what a refactorization costs here

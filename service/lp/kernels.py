@@ -594,10 +594,10 @@ def warm_up() -> None:
     eta_ftran(np.ones((4, 2)), idx[:1], np.ones(1), np.array([0, 1], dtype=np.int64), idx[1:2], v[:1], 1)
     i32 = np.array([0, 1], dtype=np.int32)
     append_rows_csc(i32, i32[:1], np.ones(1), i32, i32[:1], np.ones(1), 1)
-    ptr = np.arange(5, dtype=np.int64)
-    lu_solve(ptr, idx, np.ones(4), ptr, idx, np.ones(4), np.ones(4), idx, idx, np.ones((4, 2)))
-    lu_solve_t(ptr, idx, np.ones(4), ptr, idx, np.ones(4), np.ones(4), idx, idx, np.ones(4))
-    lu = (ptr, idx, np.ones(4), ptr, idx, np.ones(4), np.ones(4), idx, idx)
+    ptr, i32 = np.arange(5, dtype=np.int32), idx.astype(np.int32)  # L and U as Factor keeps them
+    lu = (ptr, i32, np.ones(4), ptr, i32, np.ones(4), np.ones(4), idx, idx)
+    lu_solve(*lu, np.ones((4, 2)))
+    lu_solve_t(*lu, np.ones(4))
     two = np.ones((4, 2))
     for a, b in ((two[:, 0], two[:, 1]), (np.ones(4), np.ones(4))):  # strided views and plain vectors
         lu_solve_pair(*lu, a, b, a, b)
