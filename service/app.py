@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import ctypes
+import ctypes.util
 import gc
 import logging
 import os
@@ -62,6 +64,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     API_KEYS maps key -> tenant; when absent, keys come from HOTBASIS_API_KEYS
     or the file named by HOTBASIS_API_KEYS_FILE.
     """
+    tune_malloc()  # first: before any thread makes its own allocation arena
     app = Flask("hotbasis")
     app.config.update(_env_config())
     app.config.update(config or {})
@@ -115,6 +118,38 @@ def _tune_gc() -> None:
 
 
 _GC_TUNED = False
+
+# glibc's mallopt parameters (malloc.h)
+_M_TRIM_THRESHOLD, _M_MMAP_THRESHOLD, _M_ARENA_MAX = -1, -3, -8
+
+
+def tune_malloc() -> bool:
+    """Keep freed memory for reuse instead of giving it back to the system
+    after every request (glibc only; elsewhere nothing changes).
+
+    A PATCH at 10,000 rows allocates tens of MB in arrays of 0.1-5 MB (the
+    plan's JSON pieces, the engine's vectors). With glibc's defaults, blocks
+    above the mmap threshold are mapped fresh and the heap's free top is
+    trimmed, so each request faults the same pages in again; and a request
+    thread gets its own arena, where that happens even after the threshold
+    adapts. Measured on the whole plan's JSON at 10,000 rows in a request
+    thread: 12-19 ms with the defaults, 6.6-9.8 ms with one arena, a 32 MB
+    mmap threshold and a 128 MB trim threshold. The cost: a process keeps up
+    to ~128 MB of freed heap. HOTBASIS_MALLOC_TUNING=0 leaves glibc's
+    defaults. Returns True when the settings were applied."""
+    global _MALLOC_TUNED
+    if _MALLOC_TUNED or os.environ.get("HOTBASIS_MALLOC_TUNING", "1") == "0":
+        return False
+    _MALLOC_TUNED = True
+    try:
+        mallopt = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6").mallopt
+    except (OSError, AttributeError):  # no glibc (macOS, ...): its allocator as it is
+        return False
+    settings = ((_M_ARENA_MAX, 1), (_M_MMAP_THRESHOLD, 32 << 20), (_M_TRIM_THRESHOLD, 128 << 20))
+    return all(mallopt(param, value) == 1 for param, value in settings)
+
+
+_MALLOC_TUNED = False
 
 
 def _register_request_hooks(app: Flask) -> None:
