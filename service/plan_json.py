@@ -136,6 +136,9 @@ def plan_object(
     orjson would encode it, in the order of ``names`` (which must be distinct).
     ``first``/``second``: float arrays (non-finite -> null) or None (all null)."""
     count = len(names)
+    for what, arr in (("first", first), ("second", second), ("codes", codes)):
+        if arr is not None and len(arr) != count:  # the compiled loop reads by position, unchecked
+            raise ValueError(f"plan_object: {what} has {len(arr)} entries for {count} names")
     name_buf = _bytes(orjson.dumps(names))
     ns, ne = _string_tokens(name_buf, count)
     a, a_s, a_e = _numbers(first, count)

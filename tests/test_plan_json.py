@@ -71,3 +71,10 @@ def test_inside_a_larger_answer():
     frag = plan_object(names, KEYS, np.array([1.5, 0.0]), np.array([0.0, -2.0]), np.array([0, 1]), WORDS)
     body = orjson.dumps({"id": "m", "solution": {"variables": frag, "constraints": frag}})
     assert json.loads(body)["solution"]["variables"]["x2"] == {"value": 0.0, "reduced_cost": -2.0, "basis": "at_lower"}
+
+
+def test_lengths_must_match_the_names():
+    with pytest.raises(ValueError, match="first has 2 entries for 3 names"):
+        plan_object(["a", "b", "c"], KEYS, np.ones(2), None, np.zeros(3, np.int64), ["w"])
+    with pytest.raises(ValueError, match="codes"):
+        plan_object(["a"], KEYS, np.ones(1), None, np.zeros(2, np.int64), ["w"])

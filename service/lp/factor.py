@@ -93,6 +93,7 @@ class _EtaFile:
         if self.m == 0:
             return np.zeros(0), np.zeros(0)
         va, vb = self._solve_pair(np.asarray(a, dtype=np.float64), np.asarray(b, dtype=np.float64))
+        va, vb = np.ascontiguousarray(va), np.ascontiguousarray(vb)  # the etas update them in place
         self._apply_etas(va.reshape(-1, 1))
         self._apply_etas(vb.reshape(-1, 1))
         return va, vb
