@@ -200,13 +200,10 @@ def moved_either(first: np.ndarray, second: np.ndarray, size: int) -> np.ndarray
     return np.flatnonzero(mask).astype(np.int32)
 
 
-def solution_json(
+def plan_positions(
     lp: LinearProgram, sol: Solution, basis: Basis | None, view: str, record: VersionRecord | None = None
-) -> dict[str, Any] | None:
-    """The plan by name: value, reduced cost, basis status per variable; activity, shadow price per row.
-
-    The two maps come as ``orjson.Fragment`` (encoded JSON objects, see plan_json.py): encode the
-    result with orjson; clients read ordinary JSON objects."""
+) -> tuple[np.ndarray, np.ndarray] | None:
+    """The columns and rows a solution view shows (None: no plan to show)."""
     if view == "none" or sol.x is None:
         return None
     n, m = lp.n, lp.m
@@ -223,6 +220,20 @@ def solution_json(
         if basis is not None:
             keep |= basis.row_status != Status.BASIC
         rows = np.flatnonzero(keep)
+    return cols, rows
+
+
+def solution_json(
+    lp: LinearProgram, sol: Solution, basis: Basis | None, view: str, record: VersionRecord | None = None
+) -> dict[str, Any] | None:
+    """The plan by name: value, reduced cost, basis status per variable; activity, shadow price per row.
+
+    The two maps come as ``orjson.Fragment`` (encoded JSON objects, see plan_json.py): encode the
+    result with orjson; clients read ordinary JSON objects."""
+    picked = plan_positions(lp, sol, basis, view, record)
+    if picked is None:
+        return None
+    cols, rows = picked
 
     def pick(arr: np.ndarray | None, idx: np.ndarray) -> np.ndarray | None:
         if arr is None:

@@ -20,7 +20,7 @@ from hypothesis import strategies as st
 from service.lp import LinearProgram
 from service.lp.basis import STATUS_NAMES, Basis, Status
 from service.plan_json import plan_object
-from service.serialize import ZERO, moved_either, render_result, solution_json
+from service.serialize import ZERO, moved_either, plan_positions, render_result, solution_json
 from service.store import Solution, VersionRecord
 
 KEYS = ("value", "reduced_cost", "basis")
@@ -48,22 +48,10 @@ def _plain(values: np.ndarray | None, count: int) -> list:
 
 def _plan_as_dicts(lp: LinearProgram, sol: Solution, basis: Basis | None, view: str, record=None):
     """solution_json's answer built as dicts (the form before the compiled encoder)."""
-    if view == "none" or sol.x is None:
+    picked = plan_positions(lp, sol, basis, view, record)  # which entries: shared, the encoding is under test
+    if picked is None:
         return None
-    n, m = lp.n, lp.m
-    if view == "full":
-        cols, rows = np.arange(n), np.arange(m)
-    elif view == "moved":
-        cols = record.moved_cols if record is not None and record.moved_cols is not None else np.arange(n)
-        rows = record.moved_rows if record is not None and record.moved_rows is not None else np.arange(m)
-    else:
-        cols = np.flatnonzero(np.abs(sol.x) > ZERO)
-        keep = np.zeros(m, dtype=bool)
-        if sol.shadow_price is not None:
-            keep |= np.abs(sol.shadow_price) > ZERO
-        if basis is not None:
-            keep |= basis.row_status != Status.BASIC
-        rows = np.flatnonzero(keep)
+    cols, rows = picked
 
     def pick(arr, idx):
         return _plain(None if arr is None else arr[idx], idx.size)

@@ -412,6 +412,17 @@ def lu_solve_one(Lp, Li, Lx, Up, Ui, Ux, Ud, src, dst, a, out):
         out[_u(dst[i])] = z[i]
 
 
+@numba.njit(inline="always", **_JIT)
+def _spread_pair(za, zb, ja, jb, ptr, idx, val, j):
+    """za[i] -= M[i, j] * ja, zb[i] -= M[i, j] * jb for the off-diagonal entries of column j (CSC)."""
+    for p in range(_u(ptr[j]), _u(ptr[j + 1])):
+        i = _u(idx[p])
+        if i != j:
+            mij = val[p]
+            za[i] -= mij * ja
+            zb[i] -= mij * jb
+
+
 @numba.njit(**_JIT)
 def lu_solve_pair(Lp, Li, Lx, Up, Ui, Ux, Ud, src, dst, a, b, out_a, out_b):
     """lu_solve for two right-hand sides at once (a pivot column and the DSE
@@ -429,12 +440,7 @@ def lu_solve_pair(Lp, Li, Lx, Up, Ui, Ux, Ud, src, dst, a, b, out_a, out_b):
         ja = za[j]
         jb = zb[j]
         if ja != 0.0 or jb != 0.0:
-            for p in range(_u(Lp[j]), _u(Lp[j + 1])):
-                i = _u(Li[p])
-                if i != j:
-                    mij = Lx[p]
-                    za[i] -= mij * ja
-                    zb[i] -= mij * jb
+            _spread_pair(za, zb, ja, jb, Lp, Li, Lx, j)
     for jj in range(m):  # U, last column first
         j = _u(m - 1 - jj)
         ja = za[j] / Ud[j]
@@ -442,12 +448,7 @@ def lu_solve_pair(Lp, Li, Lx, Up, Ui, Ux, Ud, src, dst, a, b, out_a, out_b):
         za[j] = ja
         zb[j] = jb
         if ja != 0.0 or jb != 0.0:
-            for p in range(_u(Up[j]), _u(Up[j + 1])):
-                i = _u(Ui[p])
-                if i != j:
-                    mij = Ux[p]
-                    za[i] -= mij * ja
-                    zb[i] -= mij * jb
+            _spread_pair(za, zb, ja, jb, Up, Ui, Ux, j)
     for i in range(m):
         di = _u(dst[i])
         out_a[di] = za[i]
