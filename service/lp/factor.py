@@ -171,9 +171,10 @@ class Factor(_EtaFile):
         self._src[self.lu.perm_r] = row_perm
         self._dst = np.empty(self.m, dtype=np.int64)
         self._dst[self.lu.perm_c] = col_perm
-        # 32-bit positions (nnz(L + U) < 2^31): a third less to read per substitution than 64-bit
-        self._L = (L.indptr.astype(np.int32), L.indices.astype(np.int32), L.data.astype(np.float64))
-        self._U = (U.indptr.astype(np.int32), U.indices.astype(np.int32), U.data.astype(np.float64))
+        # 32-bit positions: a third less to read per substitution than 64-bit (64-bit beyond 2^31)
+        ints = np.int32 if max(L.nnz, U.nnz, self.m) < 2**31 - 1 else np.int64
+        self._L = (L.indptr.astype(ints), L.indices.astype(ints), L.data.astype(np.float64))
+        self._U = (U.indptr.astype(ints), U.indices.astype(ints), U.data.astype(np.float64))
         self._Ud = np.ascontiguousarray(udiag, dtype=np.float64)
         self.lu = None  # everything needed is above; SuperLU's copy would double the memory
         self.seconds = time.perf_counter() - started  # what a refactorization costs here

@@ -155,7 +155,8 @@ class Simplex:
             self.A = scale_matrix(lp.A, self.sc) if options.scale else sp.csc_matrix(lp.A)
         R, S = self.sc.row, self.sc.col
         self.AT = sp.csr_matrix(self.A.T)  # row-wise copy for pivot rows
-        self._row_nz = np.empty(n + m, dtype=np.int32)  # the pivot row's nonzeros, see pivot_row
+        # the pivot row's nonzeros, see pivot_row (32-bit positions below 2^31 variables)
+        self._row_nz = np.empty(n + m, dtype=np.int32 if n + m < 2**31 - 1 else np.int64)
         self._row_vals = np.empty(n + m)
         self.cost_true = np.concatenate([lp.sense * lp.c * S, np.zeros(m)])
         self.cost = self.cost_true.copy()
