@@ -174,8 +174,13 @@ def summary_record(version: int, created_at: float, result: dict[str, Any], chan
     }
 
 
+def _snap(values: np.ndarray) -> np.ndarray:
+    """Values closer to zero than ZERO as 0.0 (+ 0.0 turns -0.0 into 0.0)."""
+    return np.where(np.abs(values) < ZERO, 0.0, values) + 0.0
+
+
 def _clean(values: np.ndarray) -> list[float]:
-    v = np.where(np.abs(values) < ZERO, 0.0, values) + 0.0  # + 0.0 turns -0.0 into 0.0
+    v = _snap(values)
     v = np.where(np.isfinite(v), v, np.nan)
     return [None if math.isnan(x) else x for x in v.tolist()] if np.isnan(v).any() else v.tolist()
 
@@ -238,8 +243,7 @@ def solution_json(
     def pick(arr: np.ndarray | None, idx: np.ndarray) -> np.ndarray | None:
         if arr is None:
             return None
-        v = arr[idx]
-        return np.where(np.abs(v) < ZERO, 0.0, v) + 0.0  # as _clean; non-finite values are written as null
+        return _snap(arr[idx])  # as _clean; non-finite values are written as null (plan_json)
 
     if basis is not None:
         col_codes, row_codes, words = basis.col_status[cols], basis.row_status[rows], _STATUS_WORDS

@@ -419,7 +419,7 @@ class Simplex:
         """One pivot-log entry. The sums (primal and dual infeasibility, the
         objective in scaled terms) are computed here unless the caller has them."""
         if pinf is None:
-            pinf = np.abs(self.primal_infeasibilities()).sum()
+            pinf = self._primal_infeasibilities_and_sum()[1]
         if dinf is None:
             dinf = kernels.dual_infeasibility_sum(self.d, self.status)
         if objective is None:
